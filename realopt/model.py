@@ -1,0 +1,295 @@
+"""The validated project: frozen dataclasses shared by every stage.
+
+Conventions used everywhere in realopt:
+
+* time ``t`` is in years from today (t = 0 is the valuation date);
+* rates are yearly; ``compounding`` says whether a rate ``r`` grows money by ``(1 + r)**t``
+  (``annual``) or ``exp(r * t)`` (``continuous``), and applies to both the risk-free and the
+  discount rate;
+* cash flows are paid at their dates; a decision at a date is taken after that date's cash flow;
+* money amounts are in the project's ``currency`` and ``unit`` (display only).
+
+Nothing here reads files or solves anything: the loader builds these objects, the later stages read
+them.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import ClassVar, Mapping
+
+import numpy as np
+
+COMPOUNDING = ("annual", "continuous")
+EXERCISE = ("american", "european", "bermudan")
+
+
+def growth_factor(rate: float, years, compounding: str):
+    """Money growth over ``years`` at yearly ``rate``: (1+r)**t (annual) or exp(r*t)."""
+    years = np.asarray(years, dtype=float)
+    if compounding == "continuous":
+        return np.exp(rate * years)
+    return (1.0 + rate) ** years
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """A money amount that may depend on the date t (years).
+
+    Three forms: a constant; ``points`` (year, value) pairs, linear between them and flat beyond
+    the first and last; or ``start * (1 + growth)**t``.
+    """
+
+    points: tuple[tuple[float, float], ...] = ((0.0, 0.0),)
+    start: float | None = None
+    growth: float = 0.0
+
+    @classmethod
+    def constant(cls, value: float) -> "Schedule":
+        return cls(points=((0.0, float(value)),))
+
+    @classmethod
+    def from_points(cls, mapping: Mapping[float, float]) -> "Schedule":
+        pts = tuple(sorted((float(k), float(v)) for k, v in mapping.items()))
+        if not pts:
+            raise ValueError("a schedule needs at least one (year, value) point")
+        return cls(points=pts)
+
+    @classmethod
+    def compound(cls, start: float, growth: float) -> "Schedule":
+        return cls(start=float(start), growth=float(growth))
+
+    def at(self, t):
+        """Value at date(s) t (years); returns a float for a scalar t."""
+        t = np.asarray(t, dtype=float)
+        if self.start is not None:
+            out = self.start * (1.0 + self.growth) ** t
+        else:
+            xs = [p[0] for p in self.points]
+            ys = [p[1] for p in self.points]
+            out = np.interp(t, xs, ys)
+        return float(out) if out.ndim == 0 else out
+
+    @property
+    def is_constant(self) -> bool:
+        return self.start is None and len({v for _, v in self.points}) == 1
+
+    def describe(self, fmt: str = "{:,.2f}") -> str:
+        """Short plain-words form, e.g. '12.00', '60.00 at year 0 to 35.00 at year 8'."""
+        if self.start is not None:
+            return f"{fmt.format(self.start)} growing {self.growth:.1%} a year"
+        if self.is_constant:
+            return fmt.format(self.points[0][1])
+        return " to ".join(f"{fmt.format(v)} at year {y:g}" for y, v in self.points)
+
+
+@dataclass(frozen=True)
+class Market:
+    """Rates, yearly. ``discount_rate`` is the risk-adjusted rate for the project's cash flows."""
+
+    risk_free_rate: float
+    discount_rate: float
+    compounding: str = "annual"
+
+    def risk_free_growth(self, years):
+        return growth_factor(self.risk_free_rate, years, self.compounding)
+
+    def discount_growth(self, years):
+        return growth_factor(self.discount_rate, years, self.compounding)
+
+
+@dataclass(frozen=True)
+class Driver:
+    """One source of uncertainty in the cash-flow formula (see realopt.drivers).
+
+    ``process``: ``gbm`` (d ln X = (drift - vol^2/2) dt + vol dW), ``mean_reverting``
+    (d ln X = speed (ln long_run - ln X) dt + vol dW) or ``schedule`` (deterministic, linear
+    between year points). Real-world measure; volatility and drift yearly, continuous.
+    """
+
+    name: str
+    process: str
+    start: float = 0.0
+    drift: float = 0.0
+    volatility: float = 0.0
+    long_run: float = 0.0
+    speed: float = 0.0
+    schedule: Schedule | None = None
+
+
+@dataclass(frozen=True)
+class DriverModel:
+    """Cash flows from drivers: ``cash_flow`` is a whitelisted arithmetic formula over driver names.
+
+    ``years`` are the cash-flow years (inclusive integers); ``correlation`` lists
+    (driver, driver, rho) of the stochastic drivers; ``tax_rate`` applies to positive cash flow.
+    """
+
+    years: tuple[int, int]
+    drivers: tuple[Driver, ...]
+    cash_flow: str
+    correlation: tuple[tuple[str, str, float], ...] = ()
+    tax_rate: float = 0.0
+
+
+@dataclass(frozen=True)
+class VolatilityEstimate:
+    """How to estimate the project volatility: ``simulation`` (from drivers) or ``history``."""
+
+    method: str
+    paths: int = 20000
+    seed: int = 1
+    file: str | None = None          # absolute path (resolved by the loader)
+    column: str | None = None
+    periods_per_year: float | None = None
+
+
+@dataclass(frozen=True)
+class Underlying:
+    """The operating project before any right is used.
+
+    Either ``cash_flows`` ((year, expected free cash flow) with year > 0, plus an optional
+    ``terminal_value`` paid with the last year's flow), or ``present_value`` with a continuous
+    yearly ``payout_yield``, or ``drivers``. ``volatility`` is the yearly sigma of ln(project
+    value); it may instead come from ``volatility_estimate``.
+    """
+
+    cash_flows: tuple[tuple[float, float], ...] = ()
+    terminal_value: float = 0.0
+    present_value: float | None = None
+    payout_yield: float = 0.0
+    volatility: float | None = None
+    volatility_estimate: VolatilityEstimate | None = None
+    drivers: DriverModel | None = None
+
+
+@dataclass(frozen=True)
+class Investment:
+    """Outlays (year, amount) if committed today; valued at the risk-free rate."""
+
+    outlays: tuple[tuple[float, float], ...]
+
+    def present_value(self, market: Market) -> float:
+        return float(sum(a / market.risk_free_growth(y) for y, a in self.outlays))
+
+
+@dataclass(frozen=True)
+class LatticeSpec:
+    """``steps_per_year`` (Cox-Ross-Rubinstein) or explicit ``up``/``down`` per ``step_years``."""
+
+    steps_per_year: int = 12
+    up: float | None = None
+    down: float | None = None
+    step_years: float | None = None
+
+    @property
+    def explicit(self) -> bool:
+        return self.up is not None
+
+
+@dataclass(frozen=True, kw_only=True)
+class Right:
+    """A decision right. ``window`` (start, end) in years, inclusive; ``exercise`` american (any
+    step in the window), european (the window's end only) or bermudan (``dates`` inside it)."""
+
+    name: str
+    window: tuple[float, float]
+    exercise: str = "american"
+    dates: tuple[float, ...] = ()
+    requires: tuple[str, ...] = ()
+    excludes: tuple[str, ...] = ()
+    kind: ClassVar[str] = ""
+
+    def event_dates(self) -> tuple[float, ...]:
+        """Dates the time grid must hit for this right."""
+        if self.exercise == "bermudan":
+            return tuple(self.dates)
+        return tuple(self.window)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Defer(Right):
+    """Wait before committing. ``cost`` paid on exercise; None = the investment outlay plan
+    shifted to the exercise date, valued there at the risk-free rate."""
+
+    cost: Schedule | None = None
+    kind: ClassVar[str] = "defer"
+
+
+@dataclass(frozen=True, kw_only=True)
+class Expand(Right):
+    """Multiply the scale of the operating project by (1 + scale) for ``cost``."""
+
+    scale: float
+    cost: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
+    kind: ClassVar[str] = "expand"
+
+
+@dataclass(frozen=True, kw_only=True)
+class Contract(Right):
+    """Multiply the scale by (1 - scale) and receive ``savings`` (one-off proceeds) on exercise."""
+
+    scale: float
+    savings: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
+    kind: ClassVar[str] = "contract"
+
+
+@dataclass(frozen=True, kw_only=True)
+class Abandon(Right):
+    """Sell out or close for ``salvage`` (not scaled by expansions); ends the project."""
+
+    salvage: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
+    kind: ClassVar[str] = "abandon"
+
+
+@dataclass(frozen=True)
+class Mode:
+    """An operating mode: multiplier on the base cash flows and a fixed yearly flow (+ = inflow)."""
+
+    name: str
+    scale: float = 1.0
+    fixed: float = 0.0
+
+
+@dataclass(frozen=True, kw_only=True)
+class Switch(Right):
+    """Move between operating ``modes`` any number of times; ``costs`` lists the allowed moves
+    as (from mode, to mode, cost schedule)."""
+
+    modes: tuple[Mode, ...]
+    start: str
+    costs: tuple[tuple[str, str, Schedule], ...]
+    kind: ClassVar[str] = "switch"
+
+    def mode(self, name: str) -> Mode:
+        return next(m for m in self.modes if m.name == name)
+
+
+RIGHT_TYPES: dict[str, type[Right]] = {
+    cls.kind: cls for cls in (Defer, Expand, Contract, Abandon, Switch)
+}
+
+
+@dataclass(frozen=True)
+class Project:
+    """A validated project: everything the valuation needs, nothing about where it came from
+    except ``source`` (the file, for messages) and the loader's ``warnings``."""
+
+    name: str
+    market: Market
+    underlying: Underlying
+    investment: Investment
+    rights: tuple[Right, ...] = ()
+    lattice: LatticeSpec = LatticeSpec()
+    currency: str = ""
+    unit: str = ""
+    source: str | None = None
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def horizon(self) -> float:
+        """Lattice horizon (years): the latest window end, or one year when there is no right."""
+        ends = [r.window[1] for r in self.rights]
+        return max(ends) if ends and max(ends) > 0 else 1.0
+
+    def right(self, name: str) -> Right:
+        return next(r for r in self.rights if r.name == name)
