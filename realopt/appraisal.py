@@ -1,0 +1,531 @@
+"""Appraisal: static NPV, expanded NPV, each right's value, exercise rules and chances of use.
+
+Money is in the project's currency and unit, valued today (t = 0). ``static_npv`` commits now with
+no flexibility; ``expanded_npv`` uses every right optimally on the lattice. Each right's
+``standalone_value`` is the flexibility with it alone (plus the rights it requires); its
+``shapley_value`` is its exact Shapley share of the flexibility value over all subsets of rights
+(a right whose ``requires`` are missing from a subset cannot be used in that subset).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+from functools import cached_property
+
+import numpy as np
+
+from . import CAUTION
+from .errors import ValuationError
+from .lattice import Grid, Solution, build_grid, occupancy, solve
+from .model import Project, Switch
+from .rights import (StateGraph, build_state_graph, prepared_rights, requirement_closure,
+                     unusable_rights, usable_subset)
+from .underlying import ResolvedUnderlying, resolve
+
+MAX_RIGHTS = 10
+PERCENTILES = (5, 25, 50, 75, 95)
+
+
+@dataclass(frozen=True)
+class LatticeInfo:
+    steps: int
+    step_years: float
+    up: float
+    down: float
+    probability: float
+    real_world_probability: float
+    horizon: float
+    compounding: str
+    states: int
+    tree: str
+
+
+@dataclass(frozen=True)
+class Threshold:
+    """At ``year``, from state ``state``, ``action`` is best for lower < V < upper (project value
+    after that date's cash flow); None = unbounded on that side. ``never``: no node exercises."""
+
+    year: float
+    state: str
+    action: str
+    lower: float | None
+    upper: float | None
+    never: bool = False
+
+
+@dataclass(frozen=True)
+class RightValue:
+    name: str
+    type: str
+    window: tuple[float, float]
+    exercise: str
+    standalone_value: float
+    shapley_value: float
+    side: str | None                  # "above", "below", "band" or None (never used)
+    thresholds: tuple[Threshold, ...]
+    use_years: tuple[float, ...]
+    use_risk_neutral: tuple[float, ...]
+    use_real_world: tuple[float, ...]
+    use_measure: str                  # what the chance of use counts
+    rule: str
+
+
+@dataclass(frozen=True)
+class DecisionMap:
+    """Best action on a reduced grid: ``codes[v, t]`` indexes ``actions`` (-1 outside the tree)."""
+
+    state: str
+    actions: tuple[str, ...]
+    times: np.ndarray
+    values: np.ndarray
+    codes: np.ndarray
+
+
+@dataclass(frozen=True)
+class Appraisal:
+    """Result of :func:`appraise`. ``to_dict()`` is the JSON contract; ``summary()`` a table."""
+
+    project: Project
+    present_value: float
+    investment_pv: float
+    static_npv: float
+    expanded_npv: float
+    flexibility_value: float
+    interaction: float
+    decision_today: str
+    rights: tuple[RightValue, ...]
+    lattice: LatticeInfo
+    volatility: float | None
+    volatility_stderr: float | None
+    volatility_method: str
+    warnings: tuple[str, ...]
+    state_graph: StateGraph
+    decision_maps: tuple[DecisionMap, ...]
+    fan_years: np.ndarray
+    fan: dict                         # percentile -> array of project values (real-world)
+    expected_real_world: np.ndarray   # mean project value at fan_years, real-world drift
+    expected_risk_neutral: np.ndarray
+
+    def right(self, name: str) -> RightValue:
+        return next(r for r in self.rights if r.name == name)
+
+    def to_dict(self) -> dict:
+        """The DESIGN.md results contract (plain JSON types)."""
+        p = self.project
+        return {
+            "project": p.name,
+            "currency": p.currency,
+            "unit": p.unit,
+            "present_value": self.present_value,
+            "investment_pv": self.investment_pv,
+            "static_npv": self.static_npv,
+            "expanded_npv": self.expanded_npv,
+            "flexibility_value": self.flexibility_value,
+            "interaction": self.interaction,
+            "decision_today": self.decision_today,
+            "volatility": self.volatility,
+            "volatility_stderr": self.volatility_stderr,
+            "volatility_method": self.volatility_method,
+            "rights": [_right_dict(r) for r in self.rights],
+            "lattice": {k: getattr(self.lattice, k) for k in LatticeInfo.__dataclass_fields__},
+            "warnings": list(self.warnings),
+            "caution": CAUTION,
+        }
+
+    def summary(self):
+        """Headline table (pandas DataFrame): one row per line of the value bridge."""
+        import pandas as pd
+
+        rows = [("Present value of the operating project", self.present_value, None),
+                ("Investment (present value)", -self.investment_pv, None),
+                ("Static NPV", self.static_npv, None)]
+        rows += [(f"{r.name} ({r.type})", r.shapley_value, r.standalone_value)
+                 for r in self.rights]
+        rows += [("Interaction between rights", self.interaction, None),
+                 ("Flexibility value", self.flexibility_value, None),
+                 ("Expanded NPV", self.expanded_npv, None)]
+        return pd.DataFrame(rows, columns=["item", "value", "standalone_value"]).set_index("item")
+
+
+def _right_dict(r: RightValue) -> dict:
+    return {
+        "name": r.name, "type": r.type, "window": list(r.window), "exercise": r.exercise,
+        "standalone_value": r.standalone_value, "shapley_value": r.shapley_value,
+        "rule": r.rule, "threshold_side": r.side,
+        "thresholds": [{"year": t.year, "state": t.state, "action": t.action,
+                        "exercise_above": t.lower, "exercise_below": t.upper, "never": t.never}
+                       for t in r.thresholds],
+        "chance_of_use": {"years": list(r.use_years), "measure": r.use_measure,
+                          "risk_neutral": list(r.use_risk_neutral),
+                          "real_world": list(r.use_real_world)},
+    }
+
+
+# --------------------------------------------------------------------------------------------
+class _Valuer:
+    """Solves the lattice for subsets of rights, caching by the usable subset."""
+
+    def __init__(self, project: Project):
+        self.project = project
+        self.res: ResolvedUnderlying = resolve(project)
+        self.grid: Grid = build_grid(project, self.res)
+        self.rights = prepared_rights(project)
+        self.investment_pv = project.investment.present_value(project.market)
+        self.static_npv = self.res.present_value - self.investment_pv
+        self._cache: dict[frozenset, float] = {}
+
+    def value(self, names) -> float:
+        usable = usable_subset(self.rights, set(names))
+        key = frozenset(r.name for r in usable)
+        if not key:
+            return self.static_npv
+        if key not in self._cache:
+            graph = build_state_graph(usable)
+            sol = solve(self.grid, graph)
+            self._cache[key] = self._npv(sol, graph)
+        return self._cache[key]
+
+    def _npv(self, sol: Solution, graph: StateGraph) -> float:
+        v = float(sol.values[graph.initial])
+        invested_at_start = graph.states[graph.initial].invested
+        return v - self.investment_pv if invested_at_start else v
+
+
+def shapley(names, value) -> dict:
+    """Exact Shapley shares of value(all) - value(empty) over subsets of ``names``."""
+    n = len(names)
+    vals = {}
+    for mask in range(2 ** n):
+        vals[mask] = value([names[k] for k in range(n) if mask >> k & 1])
+    w = [math.factorial(s) * math.factorial(n - s - 1) / math.factorial(n) for s in range(n)]
+    out = {}
+    for k, name in enumerate(names):
+        bit = 1 << k
+        out[name] = sum(w[bin(m).count("1")] * (vals[m | bit] - vals[m])
+                        for m in range(2 ** n) if not m & bit)
+    return out
+
+
+def expanded_npv(project: Project) -> float:
+    """Expanded NPV only (one solve, nothing recorded): for sensitivities and convergence."""
+    v = _Valuer(project)
+    return v.value([r.name for r in project.rights])
+
+
+def appraise(project: Project) -> Appraisal:
+    """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
+    if len(project.rights) > MAX_RIGHTS:
+        raise ValuationError(
+            f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "
+            f"solves, refused above {MAX_RIGHTS} rights. Fix: value related rights as one "
+            "(e.g. one switch right with several modes) or split the project.")
+    val = _Valuer(project)
+    names = [r.name for r in val.rights]
+    graph = build_state_graph(val.rights)
+    sol = solve(val.grid, graph, record=True)
+    full = val._npv(sol, graph)
+    val._cache[frozenset(names)] = full
+    shares = shapley(names, val.value) if names else {}
+    standalone = {n: val.value(requirement_closure(val.rights, n)) - val.static_npv
+                  for n in names}
+    flex = full - val.static_npv
+    grid = val.grid
+    rn_state, rn_ex = occupancy(sol, grid.probability)
+    rw_state, rw_ex = occupancy(sol, grid.real_probability)
+    sample = _sample_steps(grid.steps)
+    fmt = _money_format(project)
+    v0 = val.res.present_value
+    rights = tuple(
+        _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
+                     (rw_state, rw_ex), sample, fmt, v0)
+        for r in val.rights)
+    warnings = list(project.warnings) + list(grid.warnings)
+    for name in unusable_rights(graph):
+        warnings.append(f"Right '{name}' can never be used: its requires/excludes rule out every "
+                        "state; it adds nothing.")
+    if val.res.last_flow_year is not None and grid.horizon > val.res.last_flow_year + 1e-9:
+        warnings.append(f"Some windows run past the last cash-flow year "
+                        f"({val.res.last_flow_year:g}); the project is worth nothing after it.")
+    fan_steps = _sample_steps(grid.steps, limit=120)
+    fan_years, fan, mean_rw, mean_rn = _fan(grid, fan_steps)
+    return Appraisal(
+        project=project, present_value=v0, investment_pv=val.investment_pv,
+        static_npv=val.static_npv, expanded_npv=full, flexibility_value=flex,
+        interaction=flex - sum(standalone.values()),
+        decision_today=_decision_today(sol, graph, full, fmt),
+        rights=rights,
+        lattice=LatticeInfo(steps=grid.steps, step_years=grid.step_years, up=grid.up,
+                            down=grid.down, probability=grid.probability,
+                            real_world_probability=grid.real_probability, horizon=grid.horizon,
+                            compounding=project.market.compounding, states=len(graph.states),
+                            tree="explicit factors" if project.lattice.explicit
+                            else "Cox-Ross-Rubinstein"),
+        volatility=val.res.volatility, volatility_stderr=val.res.volatility_stderr,
+        volatility_method=val.res.volatility_method, warnings=tuple(warnings),
+        state_graph=graph, decision_maps=_decision_maps(sol, graph),
+        fan_years=fan_years, fan=fan, expected_real_world=mean_rw, expected_risk_neutral=mean_rn)
+
+
+# --------------------------------------------------------------------------------------------
+def _sample_steps(steps: int, limit: int = 240) -> np.ndarray:
+    if steps + 1 <= limit:
+        return np.arange(steps + 1)
+    return np.unique(np.round(np.linspace(0, steps, limit)).astype(int))
+
+
+def _money_format(project: Project):
+    cur, unit = project.currency, project.unit
+
+    def fmt(x: float) -> str:
+        return " ".join(s for s in (cur, f"{x:,.1f}", unit) if s)
+    return fmt
+
+
+def _primary_states(r, graph: StateGraph) -> list[int]:
+    """States from which the rule of right ``r`` is read: the project invested, the rights that
+    ``r`` requires used, every switch at its start mode (for a switch: each mode in turn)."""
+    if r.kind == "defer":
+        return [graph.initial]
+    closure = requirement_closure(graph.rights, r.name) - {r.name}
+    used = frozenset(n for n in closure if graph_right(graph, n).kind in ("expand", "contract"))
+    switches = [s for s in graph.rights if isinstance(s, Switch)]
+    modes = [s.start for s in switches]
+    for n in closure:
+        s = graph_right(graph, n)
+        if isinstance(s, Switch):          # required switch: read it in its first other mode
+            k = switches.index(s)
+            modes[k] = next(m.name for m in s.modes if m.name != s.start)
+    if isinstance(r, Switch):
+        k = switches.index(r)
+        out = []
+        for m in r.modes:
+            mm = list(modes)
+            mm[k] = m.name
+            idx = graph.index(used=used, modes=tuple(mm))
+            if idx is not None:
+                out.append(idx)
+        return out
+    idx = graph.index(used=used, modes=tuple(modes))
+    return [] if idx is None else [idx]
+
+
+def graph_right(graph: StateGraph, name: str):
+    return next(r for r in graph.rights if r.name == name)
+
+
+def _crossing(v_a, v_b, g_a, g_b) -> float:
+    """Project value between nodes v_a, v_b where the gain of exercising over carrying on
+    crosses zero (linear in V; exact for a payoff linear in V at the last date)."""
+    if g_a is None or g_b is None or g_a == g_b or (g_a > 0) == (g_b > 0) and g_a and g_b:
+        return float(math.sqrt(v_a * v_b))
+    w = -g_a / (g_b - g_a)
+    return float(v_a + min(1.0, max(0.0, w)) * (v_b - v_a))
+
+
+def _thresholds(sol: Solution, state: int, edge_ids, sample) -> list[Threshold]:
+    grid, graph, pol = sol.grid, sol.graph, sol.policy
+    runs = pol.runs.get(state, {})
+    out = []
+    for i in sample:
+        if i not in runs:
+            continue
+        act = pol.actions(state, int(i))
+        v = grid.nodes_ex(int(i))
+        for e_id in edge_ids:
+            e = graph.edges[e_id]
+            idx = np.flatnonzero(act == e_id + 1)
+            label = e.label if e.kind == "switch" else e.kind
+            if idx.size == 0:
+                out.append(Threshold(float(grid.times[i]), graph.states[state].label, label,
+                                     None, None, never=True))
+                continue
+            lo, hi = idx[0], idx[-1]
+            g_below, g_lo, g_hi, g_above = pol.gains[(state, int(i), e_id)]
+            lower = _crossing(v[lo - 1], v[lo], g_below, g_lo) if lo > 0 else None
+            upper = _crossing(v[hi], v[hi + 1], g_hi, g_above) if hi < i else None
+            out.append(Threshold(float(grid.times[i]), graph.states[state].label, label,
+                                 lower, upper))
+    return out
+
+
+def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightValue:
+    grid = sol.grid
+    edge_ids = [k for k, e in enumerate(graph.edges) if e.right == r.name]
+    prim = _primary_states(r, graph)
+    thr = []
+    for s in prim:
+        ids = [k for k in edge_ids if graph.edges[k].source == s]
+        thr += _thresholds(sol, s, ids, sample)
+    if isinstance(r, Switch):
+        switches = [s for s in graph.rights if isinstance(s, Switch)]
+        k = switches.index(r)
+        away = [i for i, s in enumerate(graph.states)
+                if not s.abandoned and s.invested and s.modes[k] != r.start]
+        rn_use = rn[0][:, away].sum(axis=1)
+        rw_use = rw[0][:, away].sum(axis=1)
+        measure = f"chance of being in a mode other than '{r.start}' at each date"
+    else:
+        rn_use = np.cumsum(rn[1][:, edge_ids].sum(axis=1))
+        rw_use = np.cumsum(rw[1][:, edge_ids].sum(axis=1))
+        measure = "chance that the right has been exercised by each date"
+    side = _side(thr)
+    return RightValue(
+        name=r.name, type=r.kind, window=tuple(float(x) for x in r.window), exercise=r.exercise,
+        standalone_value=float(alone), shapley_value=float(share), side=side,
+        thresholds=tuple(thr), use_years=tuple(float(grid.times[i]) for i in sample),
+        use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
+        use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
+        use_measure=measure,
+        rule=_rule(r, thr, side, fmt, v0, float(rw_use[-1]), grid.horizon))
+
+
+def _side(thr) -> str | None:
+    live = [t for t in thr if not t.never and (t.lower is not None or t.upper is not None)]
+    if not live:
+        return None
+    ab = sum(1 for t in live if t.lower is not None and t.upper is None)
+    be = sum(1 for t in live if t.upper is not None and t.lower is None)
+    if ab >= be and ab > 0:
+        return "above"
+    if be > ab:
+        return "below"
+    return "band"
+
+
+def _when(r) -> str:
+    a, b = r.window
+    if r.exercise == "european":
+        return f"at year {b:g} only"
+    if r.exercise == "bermudan":
+        return "on the dates " + ", ".join(f"{t:g}" for t in r.dates)
+    if a == 0:
+        return f"at any time up to year {b:g}"
+    return f"at any time between years {a:g} and {b:g}"
+
+
+def _what(r) -> str:
+    if r.kind == "defer":
+        return f"commit the investment (cost {r.cost.describe()})"
+    if r.kind == "expand":
+        return f"expand scale by {r.scale:.0%} for {r.cost.describe()}"
+    if r.kind == "contract":
+        return f"contract scale by {r.scale:.0%} receiving {r.savings.describe()}"
+    if r.kind == "abandon":
+        return f"abandon for salvage {r.salvage.describe()}"
+    return "switch between modes " + ", ".join(m.name for m in r.modes)
+
+
+def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
+    head = f"{r.name}: {_what(r)} {_when(r)}"
+    tail = (f"; today project value is {fmt(v0)}; chance of use by year {horizon:g}: "
+            f"{use_rw:.0%} (real-world)")
+    if isinstance(r, Switch):
+        parts = []
+        for action in dict.fromkeys(t.action for t in thr):
+            ts = [t for t in thr if t.action == action and not t.never]
+            if not ts:
+                parts.append(f"{action}: never")
+                continue
+            parts.append(f"{action} {_bound_text(ts, fmt)}")
+        return head + ": " + "; ".join(parts) + tail
+    ts = [t for t in thr if not t.never]
+    if not ts:
+        return head + ": not worth using at any node of the lattice at these inputs" + tail
+    return head + " " + _bound_text(ts, fmt) + tail
+
+
+def _bound_text(ts, fmt) -> str:
+    ab = [t for t in ts if t.lower is not None]
+    be = [t for t in ts if t.upper is not None]
+    if not ab and not be:
+        return "at the first date allowed, at every project value"
+    if ab and (len(ab) >= len(be)):
+        first, last = ab[0], ab[-1]
+        txt = f"once project value exceeds {fmt(first.lower)} (year {first.year:.3g})"
+        if last is not first:
+            txt += f", {fmt(last.lower)} by year {last.year:.3g}"
+        return txt
+    first, last = be[0], be[-1]
+    txt = f"if project value falls below {fmt(first.upper)} (year {first.year:.3g})"
+    if last is not first:
+        txt += f", {fmt(last.upper)} by year {last.year:.3g}"
+    return txt
+
+
+def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
+    pol = sol.policy
+    s0 = graph.initial
+    act = pol.actions(s0, 0)[0] if 0 in pol.runs.get(s0, {}) else 0
+    state = graph.states[s0]
+    if not state.invested:
+        if act:
+            return f"invest now ({graph.edges[act - 1].right})"
+        return "wait: keep the right to invest, do not commit today"
+    verdict = "invest" if full >= 0 else "do not invest: the expanded NPV is negative"
+    if act:
+        e = graph.edges[act - 1]
+        verdict += f", and use '{e.right}' at once"
+    return verdict
+
+
+def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
+    grid, pol = sol.grid, sol.policy
+    maps = []
+    steps = _sample_steps(grid.steps, limit=n_times)
+    lo = grid.log_v0 - 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
+    hi = grid.log_v0 + 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
+    values = np.exp(np.linspace(lo, hi, n_values))
+    lv = np.log(values)
+    for s, runs in pol.runs.items():
+        codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
+        labels = ["carry on"] + [
+            (graph.edges[c - 1].right if graph.edges[c - 1].kind != "switch"
+             else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
+            for c in codes_used[1:]]
+        lookup = {c: k for k, c in enumerate(codes_used)}
+        codes = np.full((n_values, len(steps)), -1, dtype=np.int16)
+        for col, i in enumerate(steps):
+            i = int(i)
+            if i not in runs:
+                continue
+            v = grid.nodes_ex(i)
+            if not np.all(v > 0):
+                continue
+            logs = np.log(v)
+            step = math.log(grid.up / grid.down)
+            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_values, int)
+            inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
+            act = pol.actions(s, i)
+            mapped = np.vectorize(lookup.get)(act) if act.size else act
+            codes[inside, col] = np.asarray(mapped)[j[inside]]
+        maps.append(DecisionMap(state=graph.states[s].label, actions=tuple(labels),
+                                times=grid.times[steps], values=values, codes=codes))
+    return tuple(maps)
+
+
+def _fan(grid: Grid, steps):
+    """Percentiles and means of project value (after each date's flow) at ``steps``."""
+    p = grid.real_probability
+    N = grid.steps
+    logfact = np.concatenate([[0.0], np.cumsum(np.log(np.arange(1, N + 1)))])
+    fan = {q: np.empty(len(steps)) for q in PERCENTILES}
+    mean_rw = np.empty(len(steps))
+    mean_rn = np.empty(len(steps))
+    for col, i in enumerate(steps):
+        i = int(i)
+        v = grid.nodes_ex(i)
+        j = np.arange(i + 1)
+        if 0.0 < p < 1.0:
+            logpmf = logfact[i] - logfact[j] - logfact[i - j] + j * math.log(p) + (i - j) * math.log(1 - p)
+            pmf = np.exp(logpmf)
+        else:
+            pmf = np.zeros(i + 1)
+            pmf[i if p >= 1.0 else 0] = 1.0
+        cdf = np.cumsum(pmf)
+        for q in PERCENTILES:
+            fan[q][col] = v[min(i, int(np.searchsorted(cdf, q / 100.0)))]
+        mean_rw[col] = float(pmf @ v)
+        growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
+        mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
+            1.0 - grid.delta[i])
+    return grid.times[steps], fan, mean_rw, mean_rn

@@ -1,0 +1,368 @@
+"""Time grid, binomial tree of project value, and backward induction over all states at once.
+
+Tree: Cox-Ross-Rubinstein by default (u = exp(sigma sqrt(dt)), d = 1/u) or explicit up/down per
+``step_years``. Risk-neutral probability p = (g - d)/(u - d) with g the risk-free growth over one
+step ((1+r)^dt annual, exp(r dt) continuous) times exp(-q dt) for a continuous payout yield q.
+Node (i, j) (step i, j up-moves) carries the base project value just before that date's cash flow,
+V = V0 * C_i * u^j * d^(i-j), C_i the product of (1 - delta) over cash-flow dates before step i.
+
+Backward induction holds one array per state and time slice (shape: states x nodes); the policy is
+kept as run-length codes per state and step (see ``Policy``), never a full tree of values.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import ValuationError
+from .model import Project
+from .rights import StateGraph
+from .underlying import ResolvedUnderlying
+
+_LOG_LIMIT = 700.0          # exp() stays finite in float64 below ~709
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The time grid and tree factors. Times in years; ``discount`` is per step (risk-free)."""
+
+    steps: int
+    step_years: float
+    horizon: float
+    up: float
+    down: float
+    probability: float           # risk-neutral
+    real_probability: float      # under the real-world drift implied by discount_rate
+    discount: float
+    log_v0: float
+    log_carry: np.ndarray        # (steps+1,) log C_i
+    delta: np.ndarray            # (steps+1,) payout fraction at step i (0 if no flow)
+    yield_flow: float            # present_value form: exp(q dt) - 1, paid at every step >= 1
+    fixed_at: np.ndarray         # (steps+1,) bool: a state's fixed yearly flow is paid here
+    fixed_beyond: float          # value at the horizon of 1 a year of fixed flow after it
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def times(self) -> np.ndarray:
+        return np.arange(self.steps + 1) * self.step_years
+
+    def step_of(self, t: float) -> int:
+        return int(min(self.steps, max(0, round(t / self.step_years))))
+
+    def nodes(self, i: int) -> np.ndarray:
+        """Project value at the nodes of step i, before that date's cash flow (cum-flow)."""
+        j = np.arange(i + 1)
+        logs = self.log_v0 + self.log_carry[i] + i * math.log(self.down) + j * math.log(
+            self.up / self.down)
+        return np.exp(np.clip(logs, -_LOG_LIMIT, _LOG_LIMIT))
+
+    def nodes_ex(self, i: int) -> np.ndarray:
+        """Project value at step i after that date's cash flow (the value decisions look at)."""
+        return self.nodes(i) * (1.0 - self.delta[i])
+
+    def memory_bytes(self, states: int) -> int:
+        """Rough peak memory of one solve: a few slices per state plus the run-length policy."""
+        return int(8 * 6 * states * (self.steps + 1) + 200 * states * (self.steps + 1))
+
+
+@dataclass(frozen=True)
+class Plan:
+    """What ``realopt check`` prints and the memory/time guard reads, before anything is solved."""
+
+    steps: int
+    step_years: float
+    horizon: float
+    up: float
+    down: float
+    probability: float
+    states: int
+    solves: int
+    memory_bytes: int
+    seconds_estimate: float
+    warnings: tuple[str, ...]
+
+
+def _event_dates(project: Project, res: ResolvedUnderlying):
+    """(date, what) pairs the grid must hit: cash-flow dates within the horizon, windows,
+    bermudan dates."""
+    out = [(t, f"cash flow of year {t:g}") for t in res.flow_times]
+    for r in project.rights:
+        out += [(t, f"window of '{r.name}'") for t in r.window]
+        if r.exercise == "bermudan":
+            out += [(t, f"exercise date of '{r.name}'") for t in r.dates]
+    return out
+
+
+def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
+    """Grid, factors and payout arrays; raises ValuationError if p is not inside (0, 1)."""
+    spec, market = project.lattice, project.market
+    horizon = float(project.horizon)
+    warnings = []
+    if spec.explicit:
+        dt = float(spec.step_years or 1.0)
+        steps = max(1, int(round(horizon / dt)))
+        if abs(steps * dt - horizon) > 1e-9 * max(1.0, horizon):
+            warnings.append(f"The horizon {horizon:g} years is not a whole number of "
+                            f"{dt:g}-year steps; the tree runs {steps} steps ({steps * dt:g} years).")
+        up, down = float(spec.up), float(spec.down)
+    else:
+        steps = max(1, int(round(spec.steps_per_year * horizon)))
+        dt = horizon / steps
+        sigma = res.volatility
+        if sigma is None or not sigma > 0:
+            raise ValuationError("The project value volatility is missing or not positive: set "
+                                 "underlying.volatility (e.g. 0.25) or an estimate block.")
+        up = math.exp(sigma * math.sqrt(dt))
+        down = 1.0 / up
+        width = sigma * math.sqrt(dt) * steps
+        if width > _LOG_LIMIT / 2:
+            raise ValuationError(
+                f"The tree would span exp(+-{width:.0f}) times today's value, beyond floating "
+                "point range. Fix: lower lattice.steps_per_year or the horizon.")
+    q = res.payout_yield
+    g = float(market.risk_free_growth(dt))
+    gq = g * math.exp(-q * dt)
+    p = (gq - down) / (up - down) if up != down else float("nan")
+    if not (0.0 < p < 1.0):
+        raise ValuationError(
+            f"The risk-neutral probability p = (g - d)/(u - d) = {p:.4g} is not strictly between "
+            f"0 and 1 (one-step growth g = {gq:.6g} including the payout yield, u = {up:.6g}, "
+            f"d = {down:.6g}). The tree then admits arbitrage. Fix: choose factors with "
+            "d < g < u (explicit up/down), or use more steps per year / a higher volatility so "
+            "that exp(sigma*sqrt(dt)) exceeds the one-step growth.")
+    gk = float(market.discount_growth(dt)) * math.exp(-q * dt)
+    p_real = (gk - down) / (up - down)
+    if not (0.0 <= p_real <= 1.0):
+        warnings.append(f"The real-world drift implied by discount_rate gives an up-probability "
+                        f"of {p_real:.3f} per step; it is clipped to [0, 1] for the real-world "
+                        "chances and fan chart.")
+        p_real = min(1.0, max(0.0, p_real))
+
+    delta = np.zeros(steps + 1)
+    fixed_at = np.zeros(steps + 1, dtype=bool)
+    moved = []
+    for t, what in _event_dates(project, res):
+        if t > horizon + 1e-12:
+            continue
+        k = int(round(t / dt))
+        if abs(k * dt - t) > 1e-9 * max(1.0, t):
+            moved.append(f"{what} (year {t:g}) moved to year {k * dt:.4g}")
+    if moved:
+        warnings.append(f"{len(moved)} date(s) fall between steps of {dt:.4g} years and were "
+                        "moved to the nearest step: " + "; ".join(moved[:6])
+                        + ("; ..." if len(moved) > 6 else "")
+                        + ". Choose steps_per_year so that these dates fall on steps.")
+    fixed_beyond = 0.0
+    if res.has_flows:
+        keep = np.ones(steps + 1)
+        for t, dl in zip(res.flow_times, res.payout):
+            if t <= horizon + 1e-12:
+                k = int(round(t / dt))
+                keep[k] *= 1.0 - dl
+                fixed_at[k] = True
+            else:
+                fixed_beyond += 1.0 / float(market.risk_free_growth(t - horizon))
+        delta = 1.0 - keep
+        with np.errstate(divide="ignore"):
+            logkeep = np.log(np.maximum(keep, 0.0))
+        log_carry = np.concatenate([[0.0], np.cumsum(logkeep)[:-1]])
+        log_carry = np.maximum(log_carry, -np.inf)
+        yield_flow = 0.0
+    else:
+        log_carry = np.zeros(steps + 1)
+        yield_flow = math.expm1(q * dt) if q else 0.0
+        for year in range(1, int(math.floor(horizon + 1e-9)) + 1):
+            fixed_at[int(round(year / dt))] = True
+    return Grid(steps=steps, step_years=dt, horizon=horizon, up=up, down=down, probability=p,
+                real_probability=p_real, discount=1.0 / g, log_v0=math.log(res.present_value),
+                log_carry=log_carry, delta=delta, yield_flow=yield_flow, fixed_at=fixed_at,
+                fixed_beyond=fixed_beyond, warnings=tuple(warnings))
+
+
+def exercise_steps(grid: Grid, right) -> np.ndarray:
+    """Boolean mask over steps where ``right`` may be exercised (windows inclusive)."""
+    mask = np.zeros(grid.steps + 1, dtype=bool)
+    a, b = grid.step_of(right.window[0]), grid.step_of(right.window[1])
+    if right.exercise == "american":
+        mask[a:b + 1] = True
+    elif right.exercise == "european":
+        mask[b] = True
+    else:
+        for t in right.dates:
+            if right.window[0] - 1e-12 <= t <= right.window[1] + 1e-12:
+                mask[grid.step_of(t)] = True
+    return mask
+
+
+@dataclass
+class Policy:
+    """Optimal action per node, run-length coded: ``runs[state][step] = (starts, codes)`` where
+    node indices starts[k] .. starts[k+1]-1 take action codes[k] (0 = carry on, e+1 = edge e).
+    Steps where the state has no choice are absent."""
+
+    runs: dict = field(default_factory=dict)
+    gains: dict = field(default_factory=dict)     # (state, step, edge) -> gains at boundaries
+
+    def actions(self, state: int, step: int) -> np.ndarray:
+        starts, codes = self.runs.get(state, {}).get(step, (np.array([0]), np.array([0])))
+        lengths = np.diff(np.append(starts, step + 1))
+        return np.repeat(codes, lengths)
+
+
+@dataclass
+class Solution:
+    values: np.ndarray           # (states,) value of each state at t = 0 (abandoned: 0)
+    policy: Policy | None
+    grid: Grid
+    graph: StateGraph
+
+
+def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
+    """Per step: list of (source row, target row or -1, amount at that step, edge id)."""
+    times = grid.times
+    per_step = [[] for _ in range(grid.steps + 1)]
+    for e_id, e in enumerate(graph.edges):
+        mask = exercise_steps(grid, rights_by_name[e.right])
+        amounts = e.sign * np.broadcast_to(np.asarray(e.amount.at(times), float), times.shape)
+        tgt = rows.get(e.target, -1)
+        for i in np.flatnonzero(mask):
+            per_step[i].append((rows[e.source], tgt, float(amounts[i]), e_id))
+    return per_step
+
+
+def _record(policy, i, edges, cands, act, H, live):
+    """Store the run-length codes of each deciding state and, for each edge, the gain over
+    carrying on (cand - H) at the nodes either side of its exercise region (for thresholds)."""
+    for src in {e[0] for e in edges}:
+        codes = act[src]
+        starts = np.concatenate([[0], np.flatnonzero(np.diff(codes)) + 1])
+        policy.runs.setdefault(live[src], {})[i] = (starts, codes[starts].copy())
+    for (src, _, _, e_id), cand in zip(edges, cands):
+        idx = np.flatnonzero(act[src] == e_id + 1)
+        if idx.size == 0:
+            continue
+        lo, hi = int(idx[0]), int(idx[-1])
+        gain = np.broadcast_to(cand - H[src], H[src].shape)
+        policy.gains[(live[src], i, e_id)] = (
+            float(gain[lo - 1]) if lo > 0 else None, float(gain[lo]),
+            float(gain[hi]), float(gain[hi + 1]) if hi < i else None)
+
+
+def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
+    """Backward induction over every state at once.
+
+    At step i (after that date's cash flow) a state's value is the best of carrying on, H_s, and
+    each edge allowed at i: H_target + money received (one decision per date). The value carried
+    back includes the state's flows at i: scale_s * delta_i * V + fixed_s. At the horizon a
+    state is worth scale_s * V_ex + fixed_s * PV(fixed flows beyond the horizon).
+    """
+    rights_by_name = {r.name: r for r in graph.rights}
+    live = [k for k, s in enumerate(graph.states) if not s.abandoned]
+    rows = {k: r for r, k in enumerate(live)}
+    scales = np.array([graph.states[k].scale for k in live])[:, None]
+    fixed = np.array([graph.states[k].fixed for k in live])[:, None]
+    has_fixed = bool(np.any(fixed))
+    per_step = _compile_edges(grid, graph, rights_by_name, rows)
+    N = grid.steps
+    p = grid.probability
+    a, b = grid.discount * (1.0 - p), grid.discount * p
+    policy = Policy() if record else None
+
+    X = scales * grid.nodes_ex(N)[None, :] + fixed * grid.fixed_beyond
+    H = np.empty_like(X)
+    for i in range(N, -1, -1):
+        if i < N:
+            H = np.multiply(X[:, 1:], b)
+            H += a * X[:, :-1]
+        else:
+            H = X
+        edges = per_step[i]
+        if edges:
+            D = H.copy()
+            act = np.zeros(D.shape, dtype=np.int16) if record else None
+            cands = []
+            for src, tgt, amount, e_id in edges:
+                cand = (H[tgt] + amount) if tgt >= 0 else amount
+                if record:
+                    better = cand > D[src]
+                    act[src][better] = e_id + 1
+                    D[src] = np.where(better, cand, D[src])
+                    cands.append(cand)
+                else:
+                    np.maximum(D[src], cand, out=D[src])
+            if record:
+                _record(policy, i, edges, cands, act, H, live)
+        else:
+            D = H
+        flow = grid.delta[i] != 0.0 or (grid.yield_flow and i > 0)
+        X = D
+        if flow:                      # new arrays, never in place: D may alias H
+            share = grid.delta[i] if grid.delta[i] != 0.0 else grid.yield_flow
+            X = X + scales * (share * grid.nodes(i))[None, :]
+        if has_fixed and grid.fixed_at[i]:
+            X = X + fixed
+    values = np.zeros(len(graph.states))
+    values[live] = X[:, 0]
+    return Solution(values=values, policy=policy, grid=grid, graph=graph)
+
+
+def occupancy(sol: Solution, p: float):
+    """Forward pass under up-probability ``p`` with the recorded policy.
+
+    Returns (state_prob, exercised): state_prob[i, k] = chance of being in state k after the
+    decisions at step i; exercised[i, e] = chance that edge e is taken at step i.
+    """
+    graph, grid, pol = sol.graph, sol.grid, sol.policy
+    S, E, N = len(graph.states), len(graph.edges), grid.steps
+    state_prob = np.zeros((N + 1, S))
+    exercised = np.zeros((N + 1, E))
+    pi = np.zeros((S, 1))
+    pi[graph.initial, 0] = 1.0
+    absorbed = np.zeros(S)
+    for i in range(N + 1):
+        if i > 0:
+            nxt = np.zeros((S, i + 1))
+            nxt[:, :-1] += (1.0 - p) * pi
+            nxt[:, 1:] += p * pi
+            pi = nxt
+        moves = []
+        for s, steps in pol.runs.items():
+            if i not in steps:
+                continue
+            act = pol.actions(s, i)
+            for code in np.unique(act):
+                if code == 0:
+                    continue
+                e = graph.edges[code - 1]
+                mass = np.where(act == code, pi[s], 0.0)
+                moves.append((s, e, code - 1, mass))
+        for s, e, e_id, mass in moves:
+            pi[s] -= mass
+            if graph.states[e.target].abandoned:
+                absorbed[e.target] += mass.sum()
+            else:
+                pi[e.target] += mass
+            exercised[i, e_id] = mass.sum()
+        state_prob[i] = pi.sum(axis=1) + absorbed
+    return state_prob, exercised
+
+
+def plan(project: Project) -> Plan:
+    """Grid and cost estimate without solving (for ``realopt check`` and the memory guard)."""
+    from .rights import build_state_graph, prepared_rights
+    from .underlying import resolve
+
+    res = resolve(project)
+    grid = build_grid(project, res)
+    graph = build_state_graph(prepared_rights(project))
+    n = len(project.rights)
+    solves = 2 ** n if n else 1
+    live = sum(1 for s in graph.states if not s.abandoned)
+    nodes = (grid.steps + 1) * (grid.steps + 2) / 2
+    seconds = 6e-9 * nodes * max(1, live) * solves + 2e-6 * grid.steps * solves * max(1, live)
+    return Plan(steps=grid.steps, step_years=grid.step_years, horizon=grid.horizon, up=grid.up,
+                down=grid.down, probability=grid.probability, states=len(graph.states),
+                solves=solves, memory_bytes=grid.memory_bytes(live), seconds_estimate=seconds,
+                warnings=tuple(project.warnings) + grid.warnings)

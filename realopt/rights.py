@@ -1,0 +1,247 @@
+"""Decision rights -> a state graph (networkx DiGraph) of the project's possible situations.
+
+A state records whether the project is invested, which one-shot rights (expand, contract) have
+been used, the current mode of each switch right, or that it was abandoned (absorbing). Each state
+carries ``scale`` (multiplier on the base project's future cash flows) and ``fixed`` (yearly flow
+in that state, + = inflow). Each right contributes edges (source, target, money on exercise).
+
+Usage rules (documented in DESIGN.md and the README):
+* defer is the only edge out of "not yet invested"; every other right needs the project invested;
+* expand/contract are used at most once; switch edges may be taken any number of times;
+* abandon pays salvage and ends the project, from every invested state;
+* ``requires: [A]``: the right is available only once A has been used (defer: invested; a switch:
+  while it is in a mode other than its start mode); ``excludes: [B]``: the right is unavailable
+  once B has been used and B is unavailable once this right has been used (symmetric).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import networkx as nx
+
+from .errors import ValuationError
+from .model import Abandon, Contract, Defer, Expand, Right, Schedule, Switch
+
+MAX_STATES = 4096
+
+
+@dataclass(frozen=True)
+class State:
+    invested: bool
+    abandoned: bool
+    used: frozenset          # names of one-shot rights used (expand, contract)
+    modes: tuple             # current mode of each switch right, in file order
+    scale: float
+    fixed: float
+    label: str
+
+
+@dataclass(frozen=True)
+class Edge:
+    """Exercising ``right`` moves ``source`` -> ``target``; ``sign`` * amount(t) is received
+    (sign -1: a cost is paid; +1: salvage or savings are received)."""
+
+    source: int
+    target: int
+    right: str
+    kind: str
+    amount: Schedule
+    sign: int
+    label: str               # e.g. "expand", "run -> idle"
+
+
+@dataclass(frozen=True)
+class StateGraph:
+    states: tuple[State, ...]
+    edges: tuple[Edge, ...]
+    initial: int
+    rights: tuple[Right, ...]
+    graph: nx.DiGraph
+
+    def index(self, *, invested=True, used=frozenset(), modes=None) -> int | None:
+        """Index of the state with these attributes (modes default: every switch at its start)."""
+        if modes is None:
+            modes = tuple(r.start for r in self.rights if isinstance(r, Switch))
+        for k, s in enumerate(self.states):
+            if (not s.abandoned and s.invested == invested and s.used == frozenset(used)
+                    and s.modes == tuple(modes)):
+                return k
+        return None
+
+
+def prepared_rights(project) -> tuple[Right, ...]:
+    """The project's rights with a defer right's default cost filled in: the investment outlay
+    plan shifted to the exercise date is worth its present value at that date (risk-free)."""
+    out = []
+    for r in project.rights:
+        if isinstance(r, Defer) and r.cost is None:
+            r = replace(r, cost=Schedule.constant(project.investment.present_value(project.market)))
+        out.append(r)
+    return tuple(out)
+
+
+def usable_subset(rights, names) -> tuple[Right, ...]:
+    """The rights named in ``names`` whose ``requires`` are (transitively) inside the subset."""
+    keep = {r.name: r for r in rights if r.name in names}
+    changed = True
+    while changed:
+        changed = False
+        for name, r in list(keep.items()):
+            if any(q not in keep for q in r.requires):
+                del keep[name]
+                changed = True
+    return tuple(r for r in rights if r.name in keep)
+
+
+def requirement_closure(rights, name) -> frozenset:
+    """``name`` plus every right it requires, directly or indirectly."""
+    by_name = {r.name: r for r in rights}
+    out, todo = set(), [name]
+    while todo:
+        n = todo.pop()
+        if n in out or n not in by_name:
+            continue
+        out.add(n)
+        todo.extend(by_name[n].requires)
+    return frozenset(out)
+
+
+def _scale_fixed(rights, used, modes):
+    scale, fixed = 1.0, 0.0
+    for r in rights:
+        if isinstance(r, Expand) and r.name in used:
+            scale *= 1.0 + r.scale
+        elif isinstance(r, Contract) and r.name in used:
+            scale *= 1.0 - r.scale
+    for sw, m in zip([r for r in rights if isinstance(r, Switch)], modes):
+        mode = sw.mode(m)
+        scale *= mode.scale
+        fixed += mode.fixed
+    return scale, fixed
+
+
+def _label(rights, invested, abandoned, used, modes):
+    if abandoned:
+        return "abandoned"
+    if not invested:
+        return "not yet invested"
+    parts = [r.name for r in rights if r.name in used]
+    switches = [r for r in rights if isinstance(r, Switch)]
+    parts += [f"{m} mode" for sw, m in zip(switches, modes) if m != sw.start]
+    return "operating" if not parts else "operating, " + ", ".join(parts)
+
+
+def build_state_graph(rights: tuple[Right, ...]) -> StateGraph:
+    """Compile ``rights`` into the state graph by search from the initial state; validates it."""
+    switches = [r for r in rights if isinstance(r, Switch)]
+    sw_index = {r.name: k for k, r in enumerate(switches)}
+    defer = next((r for r in rights if isinstance(r, Defer)), None)
+    by_name = {r.name: r for r in rights}
+    excluded_by = {r.name: set(r.excludes) for r in rights}
+    for r in rights:                                   # excludes is symmetric
+        for x in r.excludes:
+            excluded_by.setdefault(x, set()).add(r.name)
+
+    def used_in(name, key):
+        invested, abandoned, used, modes = key
+        r = by_name.get(name)
+        if r is None:
+            return False
+        if isinstance(r, Defer):
+            return invested
+        if isinstance(r, Switch):
+            return modes[sw_index[name]] != r.start
+        if isinstance(r, Abandon):
+            return abandoned
+        return name in used
+
+    start_modes = tuple(r.start for r in switches)
+    initial = (defer is None, False, frozenset(), start_modes)
+    ABANDONED = (True, True, frozenset(), ())
+    keys = [initial]
+    index = {initial: 0}
+    raw_edges = []
+    k = 0
+    while k < len(keys):
+        key = keys[k]
+        invested, abandoned, used, modes = key
+        k += 1
+        if abandoned:
+            continue
+        moves = []
+        if not invested:
+            moves.append((defer, (True, False, used, modes), defer.cost, -1, "commit"))
+        else:
+            for r in rights:
+                if isinstance(r, Defer):
+                    continue
+                if not all(used_in(q, key) for q in r.requires):
+                    continue
+                if any(used_in(x, key) for x in excluded_by.get(r.name, ())):
+                    continue
+                if isinstance(r, (Expand, Contract)):
+                    if r.name in used:
+                        continue
+                    amount, sign = (r.cost, -1) if isinstance(r, Expand) else (r.savings, +1)
+                    moves.append((r, (True, False, used | {r.name}, modes), amount, sign, r.kind))
+                elif isinstance(r, Abandon):
+                    moves.append((r, ABANDONED, r.salvage, +1, "abandon"))
+                elif isinstance(r, Switch):
+                    s = sw_index[r.name]
+                    for a, b, cost in r.costs:
+                        if modes[s] == a:
+                            new = modes[:s] + (b,) + modes[s + 1:]
+                            moves.append((r, (True, False, used, new), cost, -1, f"{a} -> {b}"))
+        for r, target, amount, sign, label in moves:
+            if target not in index:
+                if len(keys) >= MAX_STATES:
+                    raise ValuationError(
+                        f"The rights combine into more than {MAX_STATES} project states; value "
+                        "fewer rights together (split the project) or merge similar rights.")
+                index[target] = len(keys)
+                keys.append(target)
+            raw_edges.append(Edge(index[key], index[target], r.name, r.kind, amount, sign, label))
+
+    states = []
+    for key in keys:
+        invested, abandoned, used, modes = key
+        scale, fixed = (0.0, 0.0) if (abandoned or not invested) else _scale_fixed(
+            rights, used, modes)
+        states.append(State(invested, abandoned, used, modes, scale, fixed,
+                            _label(rights, invested, abandoned, used, modes)))
+
+    if defer is not None and defer.cost is None:
+        raise ValuationError("internal: a defer right's cost must be resolved before the graph")
+    g = nx.DiGraph()
+    for k, s in enumerate(states):
+        g.add_node(k, label=s.label, scale=s.scale, fixed=s.fixed)
+    for e in raw_edges:
+        if g.has_edge(e.source, e.target):
+            g.edges[e.source, e.target]["rights"].append(e.right)
+        else:
+            g.add_edge(e.source, e.target, rights=[e.right], label=e.label,
+                       amount=e.amount.describe(), sign=e.sign)
+    sg = StateGraph(tuple(states), tuple(raw_edges), 0, tuple(rights), g)
+    check_state_graph(sg)
+    return sg
+
+
+def check_state_graph(sg: StateGraph) -> None:
+    """Every state reachable from the initial one, nothing returns to "not yet invested",
+    abandonment absorbing. Raises ValuationError (these hold by construction; a failure is a bug
+    or an impossible combination of rights)."""
+    g = sg.graph
+    reach = nx.descendants(g, sg.initial) | {sg.initial}
+    if len(reach) != g.number_of_nodes():
+        raise ValuationError("internal: unreachable states in the rights graph")
+    for k, s in enumerate(sg.states):
+        if not s.invested and g.in_degree(k) > 0:
+            raise ValuationError("internal: an edge returns to 'not yet invested'")
+        if s.abandoned and g.out_degree(k) > 0:
+            raise ValuationError("internal: the abandoned state is not absorbing")
+
+
+def unusable_rights(sg: StateGraph) -> list[str]:
+    """Rights that no state allows (e.g. a requirement that an exclusion makes impossible)."""
+    seen = {e.right for e in sg.edges}
+    return [r.name for r in sg.rights if r.name not in seen]
