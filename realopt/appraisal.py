@@ -147,6 +147,15 @@ class Appraisal:
         return pd.DataFrame(rows, columns=["item", "value", "standalone_value"]).set_index("item")
 
 
+def _thin(thresholds, limit: int = 240):
+    """At most ``limit`` dates of thresholds (evenly spread, last date kept) for the JSON."""
+    years = sorted({t.year for t in thresholds})
+    if len(years) <= limit:
+        return thresholds
+    keep = {years[int(k)] for k in np.round(np.linspace(0, len(years) - 1, limit))}
+    return tuple(t for t in thresholds if t.year in keep)
+
+
 def _right_dict(r: RightValue) -> dict:
     return {
         "name": r.name, "type": r.type, "window": list(r.window), "exercise": r.exercise,
@@ -154,7 +163,7 @@ def _right_dict(r: RightValue) -> dict:
         "rule": r.rule, "threshold_side": r.side,
         "thresholds": [{"year": t.year, "state": t.state, "action": t.action,
                         "exercise_above": t.lower, "exercise_below": t.upper, "never": t.never}
-                       for t in r.thresholds],
+                       for t in _thin(r.thresholds)],
         "chance_of_use": {"years": list(r.use_years), "measure": r.use_measure,
                           "risk_neutral": list(r.use_risk_neutral),
                           "real_world": list(r.use_real_world)},
@@ -313,13 +322,23 @@ def graph_right(graph: StateGraph, name: str):
     return next(r for r in graph.rights if r.name == name)
 
 
-def _crossing(v_a, v_b, g_a, g_b) -> float:
-    """Project value between nodes v_a, v_b where the gain of exercising over carrying on
-    crosses zero (linear in V; exact for a payoff linear in V at the last date)."""
-    if g_a is None or g_b is None or g_a == g_b or (g_a > 0) == (g_b > 0) and g_a and g_b:
-        return float(math.sqrt(v_a * v_b))
-    w = -g_a / (g_b - g_a)
-    return float(v_a + min(1.0, max(0.0, w)) * (v_b - v_a))
+def _crossing(x_far, x_near, x_in, g_far, g_near, g_in, smooth: bool) -> float:
+    """Project value between x_near (carry on) and x_in (exercise) where the gain of exercising
+    over carrying on crosses zero.
+
+    Where exercise stays possible at the next step the gain touches zero smoothly (smooth
+    pasting: gain ~ -c (x* - x)^2 on the carry-on side), so sqrt(-gain) is extrapolated linearly
+    from the two carry-on nodes; otherwise (a last exercise date: gain linear in V) the gain is
+    interpolated linearly between x_near and x_in."""
+    lo_x, hi_x = min(x_near, x_in), max(x_near, x_in)
+    if smooth and g_far is not None and g_far < g_near < 0:
+        s_far, s_near = math.sqrt(-g_far), math.sqrt(-g_near)
+        x = x_near + (x_near - x_far) * s_near / (s_far - s_near)
+        return float(min(hi_x, max(lo_x, x)))
+    if g_near is None or g_in is None or g_in == g_near:
+        return float(math.sqrt(x_near * x_in))
+    w = -g_near / (g_in - g_near)
+    return float(x_near + min(1.0, max(0.0, w)) * (x_in - x_near))
 
 
 def _thresholds(sol: Solution, state: int, edge_ids, sample) -> list[Threshold]:
@@ -340,9 +359,15 @@ def _thresholds(sol: Solution, state: int, edge_ids, sample) -> list[Threshold]:
                                      None, None, never=True))
                 continue
             lo, hi = idx[0], idx[-1]
-            g_below, g_lo, g_hi, g_above = pol.gains[(state, int(i), e_id)]
-            lower = _crossing(v[lo - 1], v[lo], g_below, g_lo) if lo > 0 else None
-            upper = _crossing(v[hi], v[hi + 1], g_hi, g_above) if hi < i else None
+            g = pol.gains[(state, int(i), e_id)]
+            smooth = (state, int(i) + 1, e_id) in pol.gains
+            lower = upper = None
+            if lo > 0:
+                lower = _crossing(v[lo - 2] if lo > 1 else None, v[lo - 1], v[lo],
+                                  g[0], g[1], g[2], smooth)
+            if hi < i:
+                upper = _crossing(v[hi + 2] if hi + 2 <= i else None, v[hi + 1], v[hi],
+                                  g[5], g[4], g[3], smooth)
             out.append(Threshold(float(grid.times[i]), graph.states[state].label, label,
                                  lower, upper))
     return out
@@ -355,7 +380,7 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
     thr = []
     for s in prim:
         ids = [k for k in edge_ids if graph.edges[k].source == s]
-        thr += _thresholds(sol, s, ids, sample)
+        thr += _thresholds(sol, s, ids, range(grid.steps + 1))
     if isinstance(r, Switch):
         switches = [s for s in graph.rights if isinstance(s, Switch)]
         k = switches.index(r)

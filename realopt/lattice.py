@@ -245,9 +245,11 @@ def _record(policy, i, edges, cands, act, H, live):
             continue
         lo, hi = int(idx[0]), int(idx[-1])
         gain = np.broadcast_to(cand - H[src], H[src].shape)
-        policy.gains[(live[src], i, e_id)] = (
-            float(gain[lo - 1]) if lo > 0 else None, float(gain[lo]),
-            float(gain[hi]), float(gain[hi + 1]) if hi < i else None)
+
+        def at(j):
+            return float(gain[j]) if 0 <= j <= i else None
+        policy.gains[(live[src], i, e_id)] = (at(lo - 2), at(lo - 1), at(lo),
+                                             at(hi), at(hi + 1), at(hi + 2))
 
 
 def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
