@@ -221,6 +221,17 @@ def expanded_npv(project: Project) -> float:
     return v.value([r.name for r in project.rights])
 
 
+def quick_appraisal(project: Project) -> tuple[float, float, str]:
+    """(static NPV, expanded NPV, decision today) from one recorded solve, nothing else: for
+    sensitivities of the flexibility value and break-evens of the decision today. The numbers
+    and the decision text are those :func:`appraise` would give for the same project."""
+    v = _Valuer(project)
+    graph = build_state_graph(v.rights)
+    sol = solve(v.grid, graph, record=True)
+    full = v._npv(sol, graph)
+    return v.static_npv, full, _decision_today(sol, graph, full, _money_format(project))
+
+
 def appraise(project: Project) -> Appraisal:
     """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
     if len(project.rights) > MAX_RIGHTS:
