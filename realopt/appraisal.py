@@ -16,7 +16,7 @@ import numpy as np
 
 from . import CAUTION
 from .errors import ValuationError
-from .lattice import Grid, Solution, build_grid, occupancy, solve
+from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project, Switch
 from .rights import (StateGraph, build_state_graph, prepared_rights, requirement_closure,
                      unusable_rights, usable_subset)
@@ -185,6 +185,7 @@ class _Valuer:
 
     def value(self, names) -> float:
         usable = usable_subset(self.rights, set(names))
+        usable = tuple(r for r in usable if exercise_steps(self.grid, r).any())
         key = frozenset(r.name for r in usable)
         if not key:
             return self.static_npv

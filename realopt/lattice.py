@@ -182,7 +182,8 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
 
 
 def exercise_steps(grid: Grid, right) -> np.ndarray:
-    """Boolean mask over steps where ``right`` may be exercised (windows inclusive)."""
+    """Boolean mask over steps where ``right`` may be exercised (windows inclusive; a defer
+    right may always commit today)."""
     mask = np.zeros(grid.steps + 1, dtype=bool)
     a, b = grid.step_of(right.window[0]), grid.step_of(right.window[1])
     if right.exercise == "american":
@@ -193,6 +194,8 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
         for t in right.dates:
             if right.window[0] - 1e-12 <= t <= right.window[1] + 1e-12:
                 mask[grid.step_of(t)] = True
+    if right.kind == "defer":           # committing today is always one of the choices
+        mask[0] = True
     return mask
 
 
