@@ -385,17 +385,18 @@ def _match_key(mapping: dict, seg: str):
     return seg
 
 
-def apply_overrides(tree: Tree, overrides: Mapping[str, Any]) -> None:
-    """Set each dotted key path of ``overrides`` in ``tree.data`` (before validation)."""
+def apply_overrides(tree: Tree, overrides: Mapping[str, Any],
+                    labels: Mapping[str, str] | None = None) -> None:
+    """Set each dotted key path of ``overrides`` in ``tree.data`` (before validation).
+
+    ``labels`` names where an override came from in messages (default ``--set KEY``)."""
     for key, value in overrides.items():
-        _apply_one(tree, str(key), value)
+        _apply_one(tree, str(key), value, (labels or {}).get(key, f"--set {key}"))
     if tree.problems:
         raise ProjectError(tree.problems)
 
 
-def _apply_one(tree: Tree, key: str, value) -> None:
-    label = f"--set {key}"
-
+def _apply_one(tree: Tree, key: str, value, label: str) -> None:
     def bad(found, expected, fix=""):
         tree.problems.append(Problem(tree.file, None, None, label, found, expected, fix))
 
@@ -1606,7 +1607,8 @@ def build_project(tree: Tree, base_dir) -> model.Project:
     return _Builder(tree, Path(base_dir)).build()
 
 
-def load_project(path, overrides: Mapping[str, Any] | None = None) -> model.Project:
+def load_project(path, overrides: Mapping[str, Any] | None = None, *,
+                 labels: Mapping[str, str] | None = None) -> model.Project:
     """Read, override (dotted key paths) and validate a YAML project file.
 
     Raises :class:`realopt.errors.ProjectError` naming every problem with its file, line, column
@@ -1614,7 +1616,7 @@ def load_project(path, overrides: Mapping[str, Any] | None = None) -> model.Proj
     """
     tree = read_tree(path)
     if overrides:
-        apply_overrides(tree, overrides)
+        apply_overrides(tree, overrides, labels)
     return build_project(tree, Path(path).resolve().parent)
 
 
