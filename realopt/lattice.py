@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -51,12 +52,15 @@ class Grid:
     def step_of(self, t: float) -> int:
         return int(min(self.steps, max(0, round(t / self.step_years))))
 
+    @cached_property
+    def _powers(self) -> np.ndarray:
+        """(u/d)^j for j = 0..steps (the grid refuses trees wider than float range)."""
+        return np.exp(np.arange(self.steps + 1) * math.log(self.up / self.down))
+
     def nodes(self, i: int) -> np.ndarray:
         """Project value at the nodes of step i, before that date's cash flow (cum-flow)."""
-        j = np.arange(i + 1)
-        logs = self.log_v0 + self.log_carry[i] + i * math.log(self.down) + j * math.log(
-            self.up / self.down)
-        return np.exp(np.clip(logs, -_LOG_LIMIT, _LOG_LIMIT))
+        base = self.log_v0 + self.log_carry[i] + i * math.log(self.down)
+        return math.exp(max(base, -_LOG_LIMIT)) * self._powers[:i + 1]
 
     def nodes_ex(self, i: int) -> np.ndarray:
         """Project value at step i after that date's cash flow (the value decisions look at)."""
@@ -107,6 +111,10 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
             warnings.append(f"The horizon {horizon:g} years is not a whole number of "
                             f"{dt:g}-year steps; the tree runs {steps} steps ({steps * dt:g} years).")
         up, down = float(spec.up), float(spec.down)
+        if steps * abs(math.log(up / down)) > _LOG_LIMIT:
+            raise ValuationError(
+                f"The tree of {steps} steps with up = {up:g}, down = {down:g} would span beyond "
+                "floating point range. Fix: fewer steps or closer up/down factors.")
     else:
         steps = max(1, int(round(spec.steps_per_year * horizon)))
         dt = horizon / steps
@@ -117,7 +125,7 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
         up = math.exp(sigma * math.sqrt(dt))
         down = 1.0 / up
         width = sigma * math.sqrt(dt) * steps
-        if width > _LOG_LIMIT / 2:
+        if 2 * width > _LOG_LIMIT:
             raise ValuationError(
                 f"The tree would span exp(+-{width:.0f}) times today's value, beyond floating "
                 "point range. Fix: lower lattice.steps_per_year or the horizon.")
@@ -275,39 +283,51 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
     a, b = grid.discount * (1.0 - p), grid.discount * p
     policy = Policy() if record else None
 
-    X = scales * grid.nodes_ex(N)[None, :] + fixed * grid.fixed_beyond
-    H = np.empty_like(X)
+    S = len(live)
+    bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
+    tmp = np.empty((S, N + 1))
+    X = bufs[0]
+    np.multiply(scales, grid.nodes_ex(N)[None, :], out=X)
+    X += fixed * grid.fixed_beyond
+    cur = 0
+    one_state = S == 1
     for i in range(N, -1, -1):
         if i < N:
-            H = np.multiply(X[:, 1:], b)
-            H += a * X[:, :-1]
+            cur ^= 1
+            H = bufs[cur][:, :i + 1]
+            np.multiply(X[:, 1:], b, out=H)
+            t = tmp[:, :i + 1]
+            np.multiply(X[:, :-1], a, out=t)
+            H += t
         else:
             H = X
         edges = per_step[i]
         if edges:
-            D = H.copy()
-            act = np.zeros(D.shape, dtype=np.int16) if record else None
-            cands = []
-            for src, tgt, amount, e_id in edges:
-                cand = (H[tgt] + amount) if tgt >= 0 else amount
-                if record:
-                    better = cand > D[src]
-                    act[src][better] = e_id + 1
-                    D[src] = np.where(better, cand, D[src])
-                    cands.append(cand)
-                else:
-                    np.maximum(D[src], cand, out=D[src])
+            # candidates are computed from the carry-on values before any is overwritten
+            cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
             if record:
-                _record(policy, i, edges, cands, act, H, live)
-        else:
-            D = H
-        flow = grid.delta[i] != 0.0 or (grid.yield_flow and i > 0)
-        X = D
-        if flow:                      # new arrays, never in place: D may alias H
-            share = grid.delta[i] if grid.delta[i] != 0.0 else grid.yield_flow
-            X = X + scales * (share * grid.nodes(i))[None, :]
+                carry = H.copy()
+                act = np.zeros(H.shape, dtype=np.int16)
+                for (src, _, _, e_id), cand in zip(edges, cands):
+                    better = cand > H[src]
+                    act[src][better] = e_id + 1
+                    np.copyto(H[src], cand, where=better)
+                _record(policy, i, edges, cands, act, carry, live)
+            else:
+                for (src, _, _, _), cand in zip(edges, cands):
+                    np.maximum(H[src], cand, out=H[src])
+        share = grid.delta[i] if grid.delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+        if share:
+            flow = grid.nodes(i)
+            if one_state:
+                flow *= share * scales[0, 0]
+                H[0] += flow
+            else:
+                flow *= share
+                H += scales * flow[None, :]
         if has_fixed and grid.fixed_at[i]:
-            X = X + fixed
+            H += fixed
+        X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
     return Solution(values=values, policy=policy, grid=grid, graph=graph)
