@@ -267,6 +267,13 @@ def appraise(project: Project) -> Appraisal:
     if val.res.last_flow_year is not None and grid.horizon > val.res.last_flow_year + 1e-9:
         warnings.append(f"Some windows run past the last cash-flow year "
                         f"({val.res.last_flow_year:g}); the project is worth nothing after it.")
+    last = val.res.last_flow_year
+    for r in val.rights:
+        if r.kind == "abandon" and last is not None and r.window[1] >= last - 1e-9:
+            warnings.append(f"'{r.name}' can be used at or after the last cash-flow year "
+                            f"({last:g}), when the operating project is worth nothing more: its "
+                            "salvage there is received on top of the terminal value. End the "
+                            "window earlier unless that is intended.")
     fan_steps = _sample_steps(grid.steps, limit=120)
     fan_years, fan, mean_rw, mean_rn = _fan(grid, fan_steps)
     return Appraisal(
@@ -294,11 +301,17 @@ def _sample_steps(steps: int, limit: int = 240) -> np.ndarray:
     return np.unique(np.round(np.linspace(0, steps, limit)).astype(int))
 
 
+def _money_template(project: Project, digits: int = 1) -> str:
+    """Format string for money, e.g. 'EUR {:,.1f} million'."""
+    return " ".join(s for s in (project.currency, "{:,.%df}" % digits, project.unit) if s)
+
+
 def _money_format(project: Project):
-    cur, unit = project.currency, project.unit
+    template = _money_template(project)
 
     def fmt(x: float) -> str:
-        return " ".join(s for s in (cur, f"{x:,.1f}", unit) if s)
+        return template.format(x)
+    fmt.template = _money_template(project, 2)
     return fmt
 
 
@@ -440,20 +453,20 @@ def _when(r) -> str:
     return f"at any time between years {a:g} and {b:g}"
 
 
-def _what(r) -> str:
+def _what(r, money: str) -> str:
     if r.kind == "defer":
-        return f"commit the investment (cost {r.cost.describe()})"
+        return f"commit the investment (cost {r.cost.describe(money)})"
     if r.kind == "expand":
-        return f"expand scale by {r.scale:.0%} for {r.cost.describe()}"
+        return f"expand scale by {r.scale:.0%} for {r.cost.describe(money)}"
     if r.kind == "contract":
-        return f"contract scale by {r.scale:.0%} receiving {r.savings.describe()}"
+        return f"contract scale by {r.scale:.0%} receiving {r.savings.describe(money)}"
     if r.kind == "abandon":
-        return f"abandon for salvage {r.salvage.describe()}"
+        return f"abandon for salvage {r.salvage.describe(money)}"
     return "switch between modes " + ", ".join(m.name for m in r.modes)
 
 
 def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
-    head = f"{r.name}: {_what(r)} {_when(r)}"
+    head = f"{r.name}: {_what(r, fmt.template)} {_when(r)}"
     tail = (f"; today project value is {fmt(v0)}; chance of use by year {horizon:g}: "
             f"{use_rw:.0%} (real-world)")
     if isinstance(r, Switch):
