@@ -201,17 +201,24 @@ def _syntax_problem(err: yaml.MarkedYAMLError, text: str, file: str) -> Problem:
                        "one project per file", "remove the '---' line and what follows, or split "
                        "the file in two")
     context = f" {err.context}" if err.context else ""
+    cmark = err.context_mark
+    if cmark is not None and mark is not None and cmark.line != mark.line:
+        context += f" started at line {cmark.line + 1}, column {cmark.column + 1}"
+    if problem.startswith("found "):
+        problem = problem[len("found "):]
+    found = f"text YAML cannot read ({problem}{context})"
     fix = "check the indentation and the quotes on this line and the one above"
     if "mapping values are not allowed" in problem:
+        found = "a ': ' that YAML reads as the start of another key"
         fix = ("a value containing ': ' needs quotes, or this line is indented wrongly; "
                "check the indentation against the line above")
     elif "expected ',' or" in problem or "flow" in context:
         fix = "close every '[' with ']' and every '{' with '}'"
     elif "could not find expected ':'" in problem:
         fix = "each key needs a colon and a space after it ('key: value')"
-    elif "found undefined alias" in problem or "found undefined" in problem:
+    elif "undefined alias" in problem:
         fix = "define the anchor (&name) before using the alias (*name)"
-    return Problem(file, line, col, key, f"{problem}{context}".strip(), "valid YAML", fix)
+    return Problem(file, line, col, key, found, "valid YAML", fix)
 
 
 def parse_text(text: str, file: str) -> Tree:
@@ -483,6 +490,8 @@ class _Builder:
         self.base_dir = base_dir
         self.problems: list[Problem] = list(tree.problems)
         self.warnings: list[str] = []
+        self._reported = {p.key for p in tree.problems}   # refused by the reader already
+        self._typos: set = set()                          # (mapping path, key it suggests)
 
     # ---- reporting -------------------------------------------------------------------------
 
@@ -502,6 +511,8 @@ class _Builder:
         return None, None, None
 
     def bad(self, path, found, expected, fix="", at="value"):
+        if format_path(path) in self._reported:
+            return
         line, col, note = self._where(path, at)
         if note:
             found += f" (from {note})"
@@ -509,6 +520,8 @@ class _Builder:
                                      fix))
 
     def missing(self, path, expected, fix=""):
+        if (path[:-1], path[-1]) in self._typos:
+            return                  # the misspelt key's "did you mean" says it already
         self.bad(path, "no value (the key is missing)", expected, fix, at="missing")
 
     def warn(self, path, text):
@@ -541,6 +554,8 @@ class _Builder:
             return
         hint = difflib.get_close_matches(str(key), [str(k) for k in keys], n=1, cutoff=0.6)
         fix = f"did you mean {hint[0]}?" if hint else "remove it, or use one of the keys listed"
+        if hint:
+            self._typos.add((path[:-1], hint[0]))
         self.bad(path, f"an unknown key {key}", f"one of: {listed}", fix, at="key")
 
     def number(self, path, value, expected, *, gt=None, ge=None, lt=None, le=None, fix=""):
@@ -1264,8 +1279,9 @@ class _Builder:
             for other, ks in RIGHT_KEYS.items():
                 for k in ks:
                     if k not in keys:
-                        elsewhere.setdefault(k, f"{k} belongs to {other} rights; this is a "
-                                             f"{kind} right")
+                        article = "an" if kind[0] in "aeiou" else "a"
+                        elsewhere.setdefault(k, f"{k} belongs to {other} rights; this is "
+                                             f"{article} {kind} right")
         self.mapping(path, item, keys, "a right", elsewhere)
         name = None
         if "name" not in item:
