@@ -270,7 +270,10 @@ class _Converter:
         try:
             return self._node(node, path, depth)
         except _Budget as b:
-            line, col = _pos(b.node.start_mark)
+            # an alias carries its anchor's position: place the problem at the nearest key
+            keyed = [b.path[:n] for n in range(len(b.path), 0, -1)
+                     if b.path[:n] in self.tree.key_marks]
+            line, col = self.tree.key_marks[keyed[0]] if keyed else _pos(b.node.start_mark)
             if b.why == "count":
                 _fatal(self.tree.file, f"more than {MAX_NODES:,} values once anchors and aliases "
                        "are expanded (nested aliases, the 'billion laughs' pattern)",
@@ -431,7 +434,9 @@ def _apply_one(tree: Tree, key: str, value, label: str) -> None:
             idx, used = _match_item(node, segs, i)
             if idx is None:
                 names = [str(it.get("name")) for it in node if isinstance(it, dict) and "name" in it]
-                hint = difflib.get_close_matches(segs[i], names, n=1)
+                tries = [".".join(segs[i:j]) for j in range(len(segs), i, -1)]
+                hint = [h for t in tries for h in difflib.get_close_matches(t, names, n=1,
+                                                                            cutoff=0.5)]
                 bad(f"no item {segs[i]} in {format_path(path)}",
                     f"an index 0 to {len(node) - 1} or the name of an item"
                     + (f" ({', '.join(names)})" if names else ""),
@@ -510,10 +515,11 @@ class _Builder:
                 return (*table[p], None)
         return None, None, None
 
-    def bad(self, path, found, expected, fix="", at="value"):
+    def bad(self, path, found, expected, fix="", at="value", loc=None):
+        """Record a problem at ``path``; ``loc`` (another key path) places it in the file."""
         if format_path(path) in self._reported:
             return
-        line, col, note = self._where(path, at)
+        line, col, note = self._where(path if loc is None else loc, at)
         if note:
             found += f" (from {note})"
         self.problems.append(Problem(self.file, line, col, format_path(path), found, expected,
@@ -1341,10 +1347,15 @@ class _Builder:
                          at="key")
                 return None
             return ()
+        if value is None:
+            self.bad(path, "exercise: bermudan without dates", "a list of exercise dates (years) "
+                     "inside the window, e.g. dates: [0, 1, 2]", "add dates:, or use exercise: "
+                     "american (any time in the window) or european (its end only)",
+                     loc=path[:-1] + ("exercise",))
+            return None
         if not isinstance(value, list) or not value:
             self.bad(path, describe(value), "a list of exercise dates (years) inside the window, "
-                     "e.g. [0, 1, 2]", "bermudan rights can be used on listed dates only: add "
-                     "dates:" if value is None else "", at="missing" if value is None else "value")
+                     "e.g. [0, 1, 2]")
             return None
         out, ok = [], True
         for i, v in enumerate(value):
