@@ -221,8 +221,39 @@ def _syntax_problem(err: yaml.MarkedYAMLError, text: str, file: str) -> Problem:
     return Problem(file, line, col, key, found, "valid YAML", fix)
 
 
+_FLOW_CHARS = re.compile(r"[\[\]{}\"'#\n]")
+
+
+def _flow_depth_check(text: str, file: str) -> None:
+    """Refuse bracket nesting deeper than MAX_DEPTH before PyYAML's scanner, which slows down
+    sharply on deep flow collections, sees it (quotes and comments are skipped roughly)."""
+    if text.count("[") + text.count("{") <= MAX_DEPTH:
+        return
+    depth, quote, comment = 0, "", False
+    for m in _FLOW_CHARS.finditer(text):
+        ch = m.group()
+        if comment:
+            comment = ch != "\n"
+        elif quote:
+            quote = "" if ch == quote else quote
+        elif ch == "#" and (m.start() == 0 or text[m.start() - 1] in " \t\n"):
+            comment = True
+        elif ch in "\"'" and (m.start() == 0 or text[m.start() - 1] in " \t\n[{,:"):
+            quote = ch
+        elif ch in "[{":
+            depth += 1
+            if depth > MAX_DEPTH:
+                line, col = _line_col(text, m.start(), "\n")
+                _fatal(file, f"lists or mappings nested more than {MAX_DEPTH} levels deep",
+                       "a project file a few levels deep", "check the brackets", line, col,
+                       "(YAML syntax)")
+        elif ch in "]}":
+            depth = max(0, depth - 1)
+
+
 def parse_text(text: str, file: str) -> Tree:
     """Parse YAML text into a :class:`Tree` (plain data only); syntax errors raise ProjectError."""
+    _flow_depth_check(text, file)
     try:
         root = yaml.compose(text, Loader=yaml.SafeLoader)
     except yaml.MarkedYAMLError as err:
