@@ -59,7 +59,8 @@ class DriverResult:
     ``cash_flows``: (year, expected cash flow) for each cash-flow year; ``present_value``: their PV
     at ``market.discount_rate`` (V0); ``volatility``: yearly sigma of ln(project value) and its
     standard error (None unless a simulation estimate was asked for); ``method``: how, in words.
-    ``present_value_stderr`` is 0 when the expected flows are analytic.
+    ``present_value_stderr`` is 0 when the expected flows are analytic. ``year_one_mean`` is a
+    check: by iterated expectations E[V1] equals V0 grown one year at the discount rate.
     """
 
     cash_flows: tuple[tuple[float, float], ...]
@@ -71,6 +72,7 @@ class DriverResult:
     paths: int = 0
     seed: int | None = None
     conditional: str = ""          # "analytic", "regression" or "" (no estimate)
+    year_one_mean: float | None = None   # mean of V1 over the paths; E[V1] = V0 G(1) in theory
 
 
 # --- public API ---------------------------------------------------------------------------------
@@ -426,7 +428,7 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
             "signs and fixed costs, or model the loss-making operation as a right (abandon, "
             "switch to idle)")
     mom = _Moments()
-    low, nonpos = math.inf, 0
+    low, nonpos, v1_sum = math.inf, 0, 0.0
     rows = plan.chunk_rows(max(len(later), 1))
     gen = plan.year_draws(seed, 1)
     bar = _Progress(paths, "volatility: year-one values")
@@ -448,6 +450,7 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
                 v1 = v1 + np.einsum("ci,i->c", phi, fit.coef)
         nonpos += int(np.count_nonzero(~(v1 > 0)))
         low = min(low, float(np.min(v1)))
+        v1_sum += float(np.sum(v1))
         if not nonpos:
             r = np.log(v1 / v0)
             mom.add(r)
@@ -483,7 +486,8 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
         flows_how = "expected cash flows simulated"
     method = (f"simulation, {paths} paths, seed {seed}, conditional expectation ({cond}); "
               f"{flows_how}; {err_how}")
-    return DriverResult(flows, v0, sigma, stderr, method, pv_stderr, paths, seed, route)
+    return DriverResult(flows, v0, sigma, stderr, method, pv_stderr, paths, seed, route,
+                        v1_sum / paths)
 
 
 def _later_means(plan, y1, later) -> dict:
