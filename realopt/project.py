@@ -441,9 +441,9 @@ def _apply_one(tree: Tree, key: str, value, label: str) -> None:
     def bad(found, expected, fix=""):
         tree.problems.append(Problem(tree.file, None, None, label, found, expected, fix))
 
-    segs = [s.strip() for s in key.split(".")]
-    if not key.strip() or any(not s for s in segs):
-        bad("an empty part in the key path", "a dotted path such as market.risk_free_rate",
+    segs = key.split(".")          # raw: a right's name may hold dots and spaces
+    if not key.strip():
+        bad("an empty key path", "a dotted path such as market.risk_free_rate",
             "write KEY=VALUE with KEY like lattice.steps_per_year")
         return
     if tree.data is None:
@@ -451,7 +451,12 @@ def _apply_one(tree: Tree, key: str, value, label: str) -> None:
     node, path, i = tree.data, (), 0
     while True:
         if isinstance(node, dict):
-            k = _match_key(node, segs[i])
+            if not segs[i].strip():
+                bad(f"an empty part in the key path after {format_path(path)}",
+                    "a dotted path such as market.risk_free_rate",
+                    "remove the doubled or trailing dot")
+                return
+            k = _match_key(node, segs[i].strip())
             path += (k,)
             i += 1
             if i == len(segs):
@@ -465,10 +470,10 @@ def _apply_one(tree: Tree, key: str, value, label: str) -> None:
             idx, used = _match_item(node, segs, i)
             if idx is None:
                 names = [str(it.get("name")) for it in node if isinstance(it, dict) and "name" in it]
-                tries = [".".join(segs[i:j]) for j in range(len(segs), i, -1)]
+                tries = [".".join(segs[i:j]).strip() for j in range(len(segs), i, -1)]
                 hint = [h for t in tries for h in difflib.get_close_matches(t, names, n=1,
                                                                             cutoff=0.5)]
-                bad(f"no item {segs[i]} in {format_path(path)}",
+                bad(f"no item {segs[i].strip()} in {format_path(path)}",
                     f"an index 0 to {len(node) - 1} or the name of an item"
                     + (f" ({', '.join(names)})" if names else ""),
                     f"did you mean {hint[0]}?" if hint else "")
@@ -490,12 +495,12 @@ def _apply_one(tree: Tree, key: str, value, label: str) -> None:
 
 
 def _match_item(items: list, segs, i):
-    seg = segs[i]
+    seg = segs[i].strip()
     if re.fullmatch(r"\d+", seg):
         idx = int(seg)
         return (idx, 1) if idx < len(items) else (None, 0)
     for j in range(len(segs), i, -1):       # names may contain dots: longest match first
-        name = ".".join(segs[i:j])
+        name = ".".join(segs[i:j]).strip()
         for idx, item in enumerate(items):
             if isinstance(item, dict) and str(item.get("name", "")).strip() == name:
                 return idx, j - i
@@ -1153,10 +1158,10 @@ class _Builder:
                 ok = False
             else:
                 out.append((str(a), str(b), r))
-        if ok and out:
+        idx = {n: i for i, n in enumerate(stochastic)}
+        if ok and out and all(a in idx and b in idx for a, b, _ in out):
             import numpy as np
 
-            idx = {n: i for i, n in enumerate(stochastic)}
             m = np.eye(len(stochastic))
             for a, b, r in out:
                 m[idx[a], idx[b]] = m[idx[b], idx[a]] = r
