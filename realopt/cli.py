@@ -373,7 +373,7 @@ def headline(a) -> str:
     out.append("")
     if getattr(a, "decision_today", None):
         out.append(f"Decision today: {a.decision_today}")
-    out.append(f"Volatility: {_volatility_text(a)}")
+    out.append(_wrap(f"Volatility: {_volatility_text(a)}", "", "  "))
     lat = a.lattice
     out.append(_wrap(f"Lattice: {getattr(lat, 'tree', 'binomial')}, {lat.steps:,} steps of "
                      f"{lat.step_years:.4g} years to year {lat.horizon:g}; up {lat.up:.5g}, "
