@@ -473,19 +473,15 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
     stderr = _delta_stderr(mom.n, m2, m4, sigma)
     if route == "analytic":
         cond = "analytic"
-        err_how = "standard error from the sample fourth moment"
-        flows_how = "expected cash flows analytic"
+        err_how = "stderr: fourth-moment delta method"
     else:
         if len(later) and sigma > 0:
             g = (grad_a - (mean - mom.shift) * grad_s) / ((mom.n - 1) * sigma)
             stderr = math.hypot(stderr, math.sqrt(max(float(g @ fit.cov @ g), 0.0)))
         cond = (f"regression on year-one driver values, {p} terms, {fit.controls} control "
                 "variates")
-        err_how = ("standard error from the sample fourth moment and the regression's fitting "
-                   "error")
-        flows_how = "expected cash flows simulated"
-    method = (f"simulation, {paths} paths, seed {seed}, conditional expectation ({cond}); "
-              f"{flows_how}; {err_how}")
+        err_how = "stderr: fourth-moment delta method plus fitting error"
+    method = f"simulation, {paths} paths, seed {seed}, conditional expectation ({cond}); {err_how}"
     return DriverResult(flows, v0, sigma, stderr, method, pv_stderr, paths, seed, route,
                         v1_sum / paths)
 
