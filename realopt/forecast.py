@@ -29,10 +29,11 @@ class ForecastError(RealoptError, ValueError):
 
 
 def read_forecast(path, year_column: str, value_column: str,
-                  sheet: str | None = None) -> tuple[tuple[float, float], ...]:
+                  sheet: str | int | None = None) -> tuple[tuple[float, float], ...]:
     """(year, cash flow) pairs sorted by year from the two named columns of ``path``.
 
-    ``sheet`` selects the worksheet of an .xlsx file (default: the first). Years are years from
+    ``sheet`` selects the worksheet of an .xlsx file by name, or by number counted from 1
+    (default: the first). Years are years from
     the valuation date, > 0, distinct; values are the expected cash flows in the project's
     currency and unit.
     """
@@ -168,10 +169,17 @@ class _Table:
         try:
             if sheet is None:
                 ws = wb.worksheets[0]
-            elif sheet in wb.sheetnames:
+            elif isinstance(sheet, int) and not isinstance(sheet, bool):
+                if not 1 <= sheet <= len(wb.worksheets):
+                    raise ForecastError(
+                        f"{name}: no sheet number {sheet}; sheets are numbered from 1 and the "
+                        f"workbook has {len(wb.worksheets)}: {', '.join(wb.sheetnames)}")
+                ws = wb.worksheets[sheet - 1]
+            elif str(sheet) in wb.sheetnames:
+                sheet = str(sheet)
                 ws = wb[sheet]
             else:
-                hint = _did_you_mean(sheet, wb.sheetnames)
+                hint = _did_you_mean(str(sheet), wb.sheetnames)
                 raise ForecastError(f"{name}: no sheet '{sheet}'; sheets are: "
                                     f"{', '.join(wb.sheetnames)}.{hint}")
             header, header_row, rows = None, 0, []

@@ -113,6 +113,10 @@ def test_xlsx_first_sheet_by_default_and_named_sheet(tmp_path):
     want = ((1.0, 6.0), (2.0, 9.5), (3.0, 11.0))
     assert read_forecast(path, "Year", "Cash flow") == want
     assert read_forecast(path, "Year", "Cash flow", sheet="Plan") == want
+    assert read_forecast(path, "Year", "Cash flow", sheet=1) == want   # numbered from 1
+    with pytest.raises(ForecastError, match="no sheet number 3; sheets are numbered from 1 and "
+                                            "the workbook has 2: Plan, Notes"):
+        read_forecast(path, "Year", "Cash flow", sheet=3)
 
 
 @pytest.mark.parametrize("rows, words", [
