@@ -528,7 +528,7 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     lv = np.log(values)
     for s, runs in pol.runs.items():
         codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
-        labels = ["carry on"] + [
+        labels = ["carry on" if graph.states[s].invested else "wait"] + [
             (graph.edges[c - 1].right if graph.edges[c - 1].kind != "switch"
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
