@@ -16,9 +16,11 @@ flows at ``discount_rate`` and V1 = CF_1 + E[sum_{t>1} CF_t / G(t - 1) | year-on
 at year one (G the discount-rate growth), sigma = std(ln(V1 / V0)). The expectation is conditional
 on the drivers' year-one values: analytic when the formula is affine in the stochastic drivers and
 there is no tax (the expectation of the formula is then the formula of the conditional means);
-otherwise a least-squares regression of the simulated discounted later flows on a polynomial in the
-standardised year-one driver values. Using each path's own realised future instead would overstate
-the volatility.
+otherwise a least-squares regression of the simulated discounted later flows on functions of the
+year-one driver values (a low-degree polynomial in their logs, the values themselves, and the
+formula evaluated at the conditional means), with control variates (each driver's noise after year
+one, zero mean given year one) that take most of the noise out of the fit. Using each path's own
+realised future instead would overstate the volatility.
 
 Simulation: exact yearly transitions of both processes (no discretisation error); the yearly
 shocks of correlated drivers have the exact covariance rho_ij vol_i vol_j (1 - e^{-(k_i + k_j)}) /
@@ -26,12 +28,14 @@ shocks of correlated drivers have the exact covariance rho_ij vol_i vol_j (1 - e
 Generator(PCG64(seed).jumped(t - 1)) (year one: Generator(PCG64(seed))), drawn path-major, so the
 numbers depend only on the seed and the path count, never on the chunk size or the horizon, and the
 year-one state is the same whatever route (analytic or regression) is taken. Paths are processed in
-chunks of bounded memory. Results are identical run to run on one machine and agree to rounding
-(about 1e-12) across machines.
+chunks of bounded memory (CHUNK_BYTES); the regression needs one extra pass over year one only.
+Results are identical run to run on one machine and agree to rounding (about 1e-12) across
+machines (sums over paths use einsum in a fixed order, not threaded BLAS).
 
 The standard error of sigma is the delta-method estimate from the sample fourth moment,
-sqrt((m4 - m2^2) / n) / (2 sigma), which equals sigma / sqrt(2 n) for normal ln V1; it leaves out
-the regression's own fitting error.
+sqrt((m4 - m2^2) / n) / (2 sigma), which equals sigma / sqrt(2 n) for normal ln V1; on the
+regression route the fitting error of the coefficients (least-squares covariance, propagated to
+sigma by the delta method) is added in quadrature.
 """
 from __future__ import annotations
 

@@ -1,12 +1,13 @@
 """Read a cash-flow forecast or a price series from a CSV file or an .xlsx sheet.
 
 A forecast is a table with a header row naming its columns and one row per cash-flow year; years
-count from the valuation date (1 = one year from now) and must be positive and distinct. CSV files
-are read with the standard library (UTF-8, or Windows-1252 as saved by some spreadsheet programs;
-comma, semicolon or tab separated, found from the header row). .xlsx needs the optional extra
+count from the valuation date (1 = one year from now) and must be positive and distinct. CSV
+files are read with the standard library (UTF-8, or Windows-1252 as saved by some spreadsheet
+programs; comma, semicolon or tab separated, found from the header row). .xlsx needs the extra
 ``xlsx`` (openpyxl); formulas are read as the values last saved by the spreadsheet program.
 
-Every problem raises :class:`ForecastError` naming the file, the row (and sheet cell) and the column.
+Every problem raises :class:`ForecastError` naming the file, the row (and sheet cell) and the
+column.
 """
 from __future__ import annotations
 

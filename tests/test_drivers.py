@@ -159,7 +159,8 @@ def test_mean_reverting_project_volatility_matches_quadrature():
     r = simulate_underlying(model, est(), MARKET)
 
     def v1(x):
-        return x + sum(ou_conditional(x, lr, k, s, t - 1) / 1.09 ** (t - 1) for t in range(2, T + 1))
+        return x + sum(ou_conditional(x, lr, k, s, t - 1) / 1.09 ** (t - 1)
+                       for t in range(2, T + 1))
 
     m1 = math.log(lr) + (math.log(x0) - math.log(lr)) * math.exp(-k)
     sd1 = s * math.sqrt((1 - math.exp(-2 * k)) / (2 * k))
@@ -167,7 +168,7 @@ def test_mean_reverting_project_volatility_matches_quadrature():
     assert abs(r.volatility - want) < 3 * r.volatility_stderr
     assert r.volatility < 0.5 * s   # far below the driver's own volatility
     assert_tower(r)
-    # Expected flows: the OU lognormal mean exp(m_t + v_t / 2), m_t and v_t from X_0 (derived above).
+    # Expected flows: the OU lognormal mean exp(m_t + v_t / 2), m_t and v_t from X_0 (as above).
     for t, cf in r.cash_flows:
         m = math.log(lr) + (math.log(x0) - math.log(lr)) * math.exp(-k * t)
         v = s * s * (1 - math.exp(-2 * k * t)) / (2 * k)
@@ -347,8 +348,9 @@ def test_regression_route_reproduces_the_analytic_route_for_affine_flows():
 # --- reproducibility ----------------------------------------------------------------------------
 
 def test_same_seed_same_numbers_other_seed_other_numbers():
-    model = DriverModel(years=(1, 10), drivers=(gbm(start=80), ou()), cash_flow="max(price - cost, 5)",
-                        correlation=(("price", "cost", 0.5),), tax_rate=0.2)
+    model = DriverModel(years=(1, 10), drivers=(gbm(start=80), ou()),
+                        cash_flow="max(price - cost, 5)", correlation=(("price", "cost", 0.5),),
+                        tax_rate=0.2)
     a = simulate_underlying(model, est(seed=9), MARKET)
     b = simulate_underlying(model, est(seed=9), MARKET)
     c = simulate_underlying(model, est(seed=10), MARKET)
@@ -357,8 +359,8 @@ def test_same_seed_same_numbers_other_seed_other_numbers():
 
 
 def test_chunk_size_does_not_change_the_numbers(monkeypatch):
-    model = DriverModel(years=(1, 10), drivers=(gbm(start=80), ou()), cash_flow="max(price - cost, 5)",
-                        correlation=(("price", "cost", 0.5),))
+    model = DriverModel(years=(1, 10), drivers=(gbm(start=80), ou()),
+                        cash_flow="max(price - cost, 5)", correlation=(("price", "cost", 0.5),))
     whole = simulate_underlying(model, est(6000), MARKET)
     monkeypatch.setattr(drivers, "CHUNK_BYTES", 1)   # 1,024-path chunks (the floor)
     pieces = simulate_underlying(model, est(6000), MARKET)
