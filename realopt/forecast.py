@@ -237,10 +237,10 @@ class _Table:
             except ValueError:
                 hint = ""
                 if re.fullmatch(r"[+-]?\d+,\d+", text):
-                    hint = f" Fix: write it with a decimal point ({text.replace(',', '.')})"
+                    hint = f". Fix: write it with a decimal point ({text.replace(',', '.')})"
                 elif re.fullmatch(r"[+-]?\d{1,3}(,\d{3})+(\.\d+)?", text):
-                    hint = f" Fix: drop the thousands separators ({text.replace(',', '')})"
-                raise ForecastError(f"{where}: found '{text}'; expected a number.{hint}") from None
+                    hint = f". Fix: drop the thousands separators ({text.replace(',', '')})"
+                raise ForecastError(f"{where}: found '{text}'; expected a number{hint}") from None
         else:
             raise ForecastError(f"{where}: found {type(cell).__name__} '{cell}'; expected a "
                                 "number")
