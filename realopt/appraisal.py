@@ -426,7 +426,8 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
         use_measure=measure,
-        rule=_rule(r, thr, side, fmt, v0, float(rw_use[-1]), grid.horizon))
+        rule=_rule(r, [t for t in thr if _plausible(grid, t)], side, fmt, v0,
+                   float(rw_use[-1]), grid.horizon))
 
 
 def _side(thr) -> str | None:
@@ -463,6 +464,21 @@ def _what(r, money: str) -> str:
     if r.kind == "abandon":
         return f"abandon for salvage {r.salvage.describe(money)}"
     return "switch between modes " + ", ".join(m.name for m in r.modes)
+
+
+def _plausible(grid: Grid, t: Threshold) -> bool:
+    """Whether a threshold lies within 3 standard deviations of ln(project value) at its date
+    (risk-neutral centre). Far out in the tree the boundary near a cash-flow date can be huge
+    and says nothing useful in a one-line rule; it stays in the thresholds table."""
+    if t.never:
+        return True
+    i = grid.step_of(t.year)
+    sd = 0.5 * math.log(grid.up / grid.down) * math.sqrt(max(i, 1))
+    g = grid.probability * grid.up + (1 - grid.probability) * grid.down
+    centre = grid.log_v0 + grid.log_carry[i] + i * math.log(g) + math.log(
+        max(1e-300, 1.0 - grid.delta[i]))
+    return all(abs(math.log(b) - centre) <= 3.0 * sd + 1e-12
+               for b in (t.lower, t.upper) if b is not None and b > 0)
 
 
 def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
