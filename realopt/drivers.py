@@ -414,8 +414,9 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
     flows = tuple((float(t), float(c)) for t, c in zip(years, expected))
     if not simulate:
         if route == "analytic":
-            return DriverResult(flows, v0, None, None, "expected cash flows analytic (formula "
-                                "linear in the drivers)", 0.0, 0, None, "")
+            how = ("expected cash flows analytic (formula linear in the drivers)" if plan.uncertain
+                   else "expected cash flows exact (no uncertain driver)")
+            return DriverResult(flows, v0, None, None, how, 0.0, 0, None, "")
         return DriverResult(flows, v0, None, None, f"expected cash flows from simulation, "
                             f"{paths} paths, seed {seed}", pv_stderr, paths, seed, "")
 
