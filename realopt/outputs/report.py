@@ -1,0 +1,712 @@
+"""``realopt report``: the decision-paper outputs of one appraisal, written atomically.
+
+DIR receives ``report.html`` (self-contained: figures embedded as base64 PNG, no network fetch,
+print CSS that fits A4 and Letter), ``report.pdf`` (the same content as A4 pages, matplotlib's
+PDF backend), ``report.md`` (for pasting; figures linked from ``figures/``), ``results.json``
+(the DESIGN.md results contract, ``Appraisal.to_dict()``), ``tables/*.csv`` (and
+``tables.xlsx`` when openpyxl is installed), ``figures/*.png`` at print resolution, and
+``.realopt-report`` (a manifest that marks the folder as a report realopt may replace).
+
+Everything is written into a temporary folder beside DIR, renamed to DIR at the end: a failure
+at any point leaves no partial DIR and any previous report intact. DIR is never the project file,
+never a folder holding it, and never an existing folder that is not a realopt report.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import os
+import shutil
+import tempfile
+import textwrap
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .. import CAUTION, __version__
+from ..errors import RealoptError
+from .sensitivity import DEFAULT_MOVES, Moves, analyse
+from .tables import (Fmt, breakeven_text, chance_by_year, csv_tables, inputs_rows,
+                     lattice_rows)
+
+MARKER = ".realopt-report"
+CONVENTIONS = (
+    "Years are counted from today (t = 0). Cash flows are paid at their dates; a decision at a "
+    "date is taken after that date's cash flow, so exercising at t acquires or gives up the flows "
+    "after t. Rates are yearly and compound as stated (annual or continuous), for both the "
+    "risk-free and the discount rate. Money amounts are valued today in the project's currency "
+    "and unit. Salvage does not scale with expansions or contractions. Project value is the "
+    "present value of the operating project's expected cash flows; its volatility is the yearly "
+    "standard deviation of ln(project value).")
+
+
+class ReportError(RealoptError):
+    """The report could not be written; the message says why and what to change."""
+
+
+@dataclass
+class Built:
+    """The report's content, rendered once and shared by every format."""
+
+    appraisal: object
+    sensitivity: object
+    fmt: Fmt
+    charts: list
+    pngs: dict = field(default_factory=dict)          # slug -> PNG bytes
+    pdf_pages: list = field(default_factory=list)      # page headings, in order
+
+
+# ------------------------------------------------------------------------ folder safety
+def _check_target(out_dir: Path, source) -> None:
+    out = out_dir.resolve()
+    if source is not None:
+        src = Path(source).resolve()
+        if out == src:
+            raise ReportError(f"The output folder {out_dir} is the project file itself. Fix: "
+                              "name another folder with -o DIR.")
+        if out in src.parents:
+            raise ReportError(f"The output folder {out_dir} holds the project file {source}; "
+                              "a report replaces its whole folder. Fix: name a new folder "
+                              "with -o DIR.")
+    if out.exists() and not out.is_dir():
+        raise ReportError(f"{out_dir} exists and is a file, not a folder. Fix: name a folder "
+                          "with -o DIR.")
+    if out.is_dir() and any(out.iterdir()) and not (out / MARKER).is_file():
+        raise ReportError(f"{out_dir} exists and is not a realopt report (no {MARKER} inside); "
+                          "realopt replaces a report folder whole and will not delete other "
+                          "files. Fix: name a new or empty folder with -o DIR.")
+    for parent in out.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise ReportError(f"Cannot write {out_dir}: {parent} is a file, not a folder. "
+                                  "Fix: choose another output folder with -o DIR.")
+            break
+
+
+def write_report(appraisal, out_dir, *, source=None, moves: Moves = DEFAULT_MOVES,
+                 dpi: int = 300, xlsx: bool | None = None) -> Path:
+    """Write the report of ``appraisal`` into ``out_dir`` (see the module doc); returns DIR.
+
+    ``source``: the project file (refused as, or inside, the output). ``moves``: the tornado's
+    input moves. ``xlsx``: write tables.xlsx (default: when openpyxl is installed).
+    Raises :class:`ReportError` (nothing written, previous report intact) on failure.
+    """
+    out_dir = Path(out_dir)
+    source = source if source is not None else appraisal.project.source
+    _check_target(out_dir, source)
+    final = out_dir.resolve()
+    created = []
+    tmp = None
+    try:
+        s = analyse(appraisal, moves)
+        for parent in reversed(final.parents):
+            if not parent.exists():
+                parent.mkdir()
+                created.append(parent)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{final.name}.tmp-", dir=final.parent))
+        umask = os.umask(0)
+        os.umask(umask)
+        tmp.chmod(0o777 & ~umask)                  # mkdtemp makes it private; a report is not
+        _write_all(appraisal, s, tmp, dpi, xlsx, source)
+        _swap(tmp, final)
+        tmp = None
+    except ReportError:
+        raise
+    except RealoptError as err:
+        raise ReportError(f"The report was not written: {err}") from err
+    except OSError as err:
+        raise ReportError(
+            f"Could not write the report to {out_dir}: {err.strerror or err} "
+            f"({err.filename or out_dir}). Nothing was changed; any previous report is intact. "
+            "Fix: choose a folder you can write to with -o DIR, or free disk space.") from err
+    except Exception as err:
+        raise ReportError(
+            f"The report was not written ({type(err).__name__}: {err}); nothing was changed and "
+            "any previous report is intact. This is a fault in realopt's outputs, not in your "
+            "file; please report it with the project file.") from err
+    finally:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+            for d in reversed(created):
+                try:
+                    d.rmdir()
+                except OSError:
+                    pass
+    return out_dir
+
+
+def _swap(tmp: Path, final: Path) -> None:
+    """Rename tmp to final; a previous report is moved aside first and removed after."""
+    old = None
+    if final.exists():
+        old = Path(tempfile.mkdtemp(prefix=f".{final.name}.old-", dir=final.parent))
+        old.rmdir()
+        os.rename(final, old)
+    try:
+        os.rename(tmp, final)
+    except OSError:
+        if old is not None:
+            os.rename(old, final)
+        raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+
+
+# ------------------------------------------------------------------------ writing
+def _write_all(a, s, tmp: Path, dpi: int, xlsx, source) -> None:
+    from . import figures
+
+    f = Fmt(a.project)
+    b = Built(appraisal=a, sensitivity=s, fmt=f, charts=figures.charts(a, s))
+    (tmp / "figures").mkdir()
+    for chart, png in zip(b.charts, render_all(b.charts, dpi)):
+        b.pngs[chart.slug] = png
+        (tmp / "figures" / f"{chart.slug}.png").write_bytes(png)
+    tables = csv_tables(a, s, f)
+    (tmp / "tables").mkdir()
+    for stem, df in tables.items():
+        df.to_csv(tmp / "tables" / f"{stem}.csv", index=False)
+    if xlsx is None:
+        try:
+            import openpyxl  # noqa: F401
+            xlsx = True
+        except ImportError:
+            xlsx = False
+    if xlsx:
+        import pandas as pd
+
+        with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
+            for stem, df in tables.items():
+                df.to_excel(xw, sheet_name=stem[:31], index=False)
+    from ..cli import to_json
+
+    (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
+    (tmp / "report.html").write_text(render_html(b), encoding="utf-8")
+    (tmp / "report.md").write_text(render_markdown(b), encoding="utf-8")
+    write_pdf(b, tmp / "report.pdf")
+    manifest = {"realopt": __version__, "project": a.project.name,
+                "source": None if source is None else str(source),
+                "figures": [c.slug + ".png" for c in b.charts],
+                "tables": [t + ".csv" for t in tables], "xlsx": bool(xlsx),
+                "pdf_pages": b.pdf_pages}
+    (tmp / MARKER).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
+
+
+_CHARTS = None          # the charts being drawn, for forked workers (see render_all)
+
+
+def _render_one(args):
+    from . import figures
+
+    k, dpi = args
+    return figures.render(_CHARTS[k], dpi=dpi)[0]
+
+
+def render_all(charts, dpi: int) -> list[bytes]:
+    """PNG bytes of every chart. Drawing dominates the report's time and each figure is
+    independent, so where the platform forks (Linux) and has several cores, figures are drawn
+    in worker processes that inherit the charts; otherwise one after the other."""
+    global _CHARTS
+    from . import figures
+
+    workers = min(len(charts), os.cpu_count() or 1, 4)
+    if workers > 1 and len(charts) > 2:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        try:
+            ctx = multiprocessing.get_context("fork")
+        except ValueError:
+            ctx = None
+        if ctx is not None:
+            _CHARTS = charts
+            try:
+                with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+                    return list(pool.map(_render_one, [(k, dpi) for k in range(len(charts))]))
+            finally:
+                _CHARTS = None
+    return [figures.render(c, dpi=dpi)[0] for c in charts]
+
+
+# ------------------------------------------------------------------------ shared content
+def _headline_rows(a):
+    """(label, value, value alone) of the headline table: the Appraisal's own summary()."""
+    df = a.summary()
+    return [(item, row["value"], None if row["standalone_value"] != row["standalone_value"]
+             else row["standalone_value"]) for item, row in df.iterrows()]
+
+
+def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
+    facts = [("Window", f"years {f.year(r.window[0])} to {f.year(r.window[1])}, {r.exercise}"),
+             ("Shapley share", f.money_unit(r.shapley_value)),
+             ("Value alone", f.money_unit(r.standalone_value))]
+    if r.use_years:
+        facts.append((f"Chance of use by year {f.year(r.use_years[-1])}",
+                      f"{f.pct(r.use_real_world[-1])} real-world, "
+                      f"{f.pct(r.use_risk_neutral[-1])} risk-neutral"))
+    facts.append(("What the chance counts", r.use_measure))
+    return facts
+
+
+def _files_text() -> str:
+    return ("This folder also holds results.json (the full results), tables/ (every table as "
+            "CSV, and tables.xlsx when available), figures/ (every figure as PNG at print "
+            "resolution) and report.pdf.")
+
+
+# ------------------------------------------------------------------------ HTML
+CSS = """
+@page { margin: 15mm 13mm; }
+* { box-sizing: border-box; }
+html { background: #ffffff; }
+body { font-family: "DejaVu Sans", Verdana, sans-serif; font-size: 10pt; line-height: 1.42;
+       color: %(ink)s; max-width: 180mm; margin: 0 auto; padding: 6mm 5mm 12mm; }
+h1 { font-size: 17pt; margin: 0 0 2mm; }
+h2 { font-size: 13pt; margin: 8mm 0 2mm; border-bottom: 1.5px solid %(accent)s;
+     padding-bottom: 1mm; color: %(accent)s; }
+h3 { font-size: 10.5pt; margin: 4mm 0 1mm; }
+p, li { overflow-wrap: anywhere; }
+.meta { color: %(muted)s; font-size: 9pt; margin: 0 0 3mm; }
+.caution { border-left: 3px solid %(warn)s; background: #fbf2ea; padding: 2mm 3mm;
+           font-size: 9pt; margin: 3mm 0; }
+.decision { font-size: 12pt; font-weight: bold; margin: 2mm 0 3mm; }
+table { border-collapse: collapse; width: 100%%; margin: 2mm 0 3mm; font-size: 8.8pt; }
+th, td { text-align: left; padding: 1.2mm 2mm; border-bottom: 1px solid %(grid)s;
+         vertical-align: top; overflow-wrap: anywhere; }
+th { border-bottom: 1.5px solid %(muted)s; font-weight: bold; }
+td.num, th.num { text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }
+tr.total td { font-weight: bold; border-top: 1.5px solid %(muted)s; }
+.card { border: 1px solid %(grid)s; border-radius: 2mm; padding: 1mm 3mm 2mm; margin: 2mm 0; }
+.card p.rule { margin: 1mm 0; }
+.card table { font-size: 8.5pt; margin: 1mm 0 0; }
+figure { margin: 4mm 0; }
+figure img { display: block; width: 100%%; max-width: 100%%; height: auto; }
+figcaption { font-size: 9pt; color: %(ink)s; margin-top: 1mm; }
+.note { color: %(muted)s; font-size: 9pt; }
+footer { margin-top: 8mm; font-size: 8.5pt; color: %(muted)s; }
+@media print {
+  body { max-width: none; padding: 0; font-size: 9.5pt; }
+  h2 { break-after: avoid; page-break-after: avoid; }
+  figure, .card, tr, .caution { break-inside: avoid; page-break-inside: avoid; }
+  figure img { max-height: 230mm; object-fit: contain; }
+}
+"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def _num_td(x, text: str) -> str:
+    if x is None:
+        return '<td class="num"></td>'
+    return f'<td class="num" data-value="{float(x)!r}">{_e(text)}</td>'
+
+
+def _html_table(headers, rows, num_cols=(), row_classes=None) -> str:
+    out = ["<table><thead><tr>"]
+    out += [f'<th class="num">{_e(h)}</th>' if k in num_cols else f"<th>{_e(h)}</th>"
+            for k, h in enumerate(headers)]
+    out.append("</tr></thead><tbody>")
+    for i, row in enumerate(rows):
+        cls = f' class="{row_classes[i]}"' if row_classes and row_classes[i] else ""
+        out.append(f"<tr{cls}>")
+        for k, cell in enumerate(row):
+            if isinstance(cell, tuple):            # (value, text): a number
+                out.append(_num_td(*cell))
+            else:
+                out.append(f"<td>{_e(cell)}</td>")
+        out.append("</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _figure_html(b: Built, slug: str) -> str:
+    chart = next(c for c in b.charts if c.slug == slug)
+    data = base64.b64encode(b.pngs[slug]).decode("ascii")
+    return (f'<figure id="fig-{_e(slug)}"><img alt="{_e(chart.title)}" '
+            f'src="data:image/png;base64,{data}"><figcaption><b>{_e(chart.title)}.</b> '
+            f"{_e(chart.caption)}</figcaption></figure>")
+
+
+def _sections(b: Built):
+    """The report's sections as (heading, list of blocks); a block is a tuple naming its kind:
+    ('p', text), ('decision', text), ('caution', text), ('table', headers, rows, num_cols,
+    total_rows), ('card', right), ('figure', slug), ('list', items), ('note', text)."""
+    a, s, f = b.appraisal, b.sensitivity, b.fmt
+    slugs = [c.slug for c in b.charts]
+    money = f.unit_label
+    rows, totals = [], []
+    for label, value, alone in _headline_rows(a):
+        rows.append((label, (value, f.money(value)),
+                     (alone, f.money(alone)) if alone is not None else (None, "")))
+        totals.append(label in ("Static NPV", "Expanded NPV"))
+    out = []
+    out.append(("Decision today", [
+        ("decision", a.decision_today),
+        ("table", ["", f"Value ({money})", f"Right alone ({money})"], rows, (1, 2), totals),
+        ("figure", "value_bridge")]))
+    card = [("p", "Each right's rule in plain words, read from the optimal exercise policy on "
+                  "the lattice, with the numbers it rests on.")]
+    card += [("card", r) for r in a.rights]
+    if not a.rights:
+        card.append(("p", "The project has no rights: the expanded NPV is the static NPV."))
+    cby = chance_by_year(a)
+    if len(cby):
+        card.append(("table", ["Right", "Year", "Chance of use, real-world",
+                               "Chance of use, risk-neutral"],
+                     [(r.right, f.year(r.year), (r.real_world, f.pct(r.real_world)),
+                       (r.risk_neutral, f.pct(r.risk_neutral))) for r in cby.itertuples()],
+                     (2, 3), None))
+    out.append(("Decision rule card", card))
+    when = [("figure", x) for x in slugs if x.startswith("decision_map_")]
+    from .figures import single_action_states
+
+    quiet = single_action_states(a)
+    if quiet:
+        when.append(("note", "No decision map is drawn for " + "; ".join(
+            f"\u201c{q}\u201d" for q in quiet) + ": no right is worth using from that state at "
+            "any node of the lattice."))
+    when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use") if x in slugs]
+    out.append(("When to use each right", when))
+    out.append(("Uncertainty in project value", [("figure", "value_fan")]))
+    sens = []
+    if "sensitivity" in slugs:
+        sens.append(("figure", "sensitivity"))
+        sens.append(("table", ["Input moved (down / up)", f"Expanded NPV down ({money})",
+                               "up", "Flexibility value down", "up"],
+                     [(f"{r.input} ({r.low_setting} / {r.high_setting})",
+                       (r.expanded_low, f.money(r.expanded_low)),
+                       (r.expanded_high, f.money(r.expanded_high)),
+                       (r.flexibility_low, f.money(r.flexibility_low)),
+                       (r.flexibility_high, f.money(r.flexibility_high))) for r in s.rows],
+                     (1, 2, 3, 4), None))
+    sens.append(("p", f"Moves: {s.moves.describe()}."))
+    sens.append(("list", [breakeven_text(x, f, s.decision_today) for x in s.breakevens]))
+    for note in s.notes:
+        sens.append(("note", note))
+    out.append(("Sensitivity and break-evens", sens))
+    lat = [("table", ["Lattice", ""], [(k, v) for k, v in lattice_rows(a, f)], (), None)]
+    if "convergence" in slugs:
+        lat.append(("figure", "convergence"))
+    else:
+        lat.append(("note", "No convergence figure: the tree's step is fixed by explicit "
+                            "up/down factors in the file."))
+    out.append(("Lattice used", lat))
+    out.append(("Rights and project states", [("figure", "state_diagram")]))
+    out.append(("Inputs and assumptions", [
+        ("table", ["Section", "Input", "Value"], inputs_rows(a.project, f), (), None),
+        ("p", CONVENTIONS)]))
+    out.append(("Warnings", [("list", list(a.warnings))] if a.warnings
+                else [("p", "None.")]))
+    out.append(("Caution", [("caution", CAUTION), ("note", _files_text())]))
+    return out
+
+
+def render_html(b: Built) -> str:
+    a, f = b.appraisal, b.fmt
+    p = a.project
+    src = f"; source file: {Path(p.source).name}" if p.source else ""
+    body = [f"<h1>{_e(p.name)}</h1>",
+            f'<p class="meta">Real-options appraisal by realopt {_e(__version__)}{_e(src)}. '
+            f"Money in {_e(f.unit_label)}, valued today; years from today.</p>",
+            f'<div class="caution">{_e(CAUTION)}</div>']
+    for heading, blocks in _sections(b):
+        body.append(f"<h2>{_e(heading)}</h2>")
+        for blk in blocks:
+            body.append(_html_block(b, blk))
+    body.append(f"<footer>realopt {_e(__version__)}. {_e(_files_text())}</footer>")
+    css = CSS % _css_colours()
+    return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+            f"<title>{_e(p.name)} - real-options appraisal</title><style>{css}</style></head>"
+            f"<body>{''.join(body)}</body></html>\n")
+
+
+def _css_colours():
+    from .style import CSS_COLOURS
+
+    return CSS_COLOURS
+
+
+def _html_block(b: Built, blk) -> str:
+    kind = blk[0]
+    f = b.fmt
+    if kind == "p":
+        return f"<p>{_e(blk[1])}</p>"
+    if kind == "note":
+        return f'<p class="note">{_e(blk[1])}</p>'
+    if kind == "decision":
+        return f'<p class="decision">{_e(blk[1])}</p>'
+    if kind == "caution":
+        return f'<div class="caution">{_e(blk[1])}</div>'
+    if kind == "list":
+        return "<ul>" + "".join(f"<li>{_e(x)}</li>" for x in blk[1]) + "</ul>"
+    if kind == "figure":
+        return _figure_html(b, blk[1])
+    if kind == "table":
+        _, headers, rows, num_cols, totals = blk
+        classes = ["total" if t else "" for t in totals] if totals else None
+        return _html_table(headers, rows, num_cols, classes)
+    if kind == "card":
+        r = blk[1]
+        facts = _right_facts(r, f)
+        return (f'<div class="card"><h3>{_e(r.name)} ({_e(r.type)})</h3>'
+                f'<p class="rule">{_e(r.rule)}</p>'
+                + _html_table(["", ""], facts) + "</div>")
+    raise ValueError(kind)
+
+
+# ------------------------------------------------------------------------ Markdown
+def _md_cell(x) -> str:
+    if isinstance(x, tuple):
+        x = x[1]
+    return str(x).replace("|", "\\|").replace("\n", " ")
+
+
+def _md_table(headers, rows, num_cols=()) -> str:
+    head = "| " + " | ".join(_md_cell(h) or " " for h in headers) + " |"
+    sep = "| " + " | ".join("---:" if k in num_cols else "---" for k in range(len(headers))) + " |"
+    body = ["| " + " | ".join(_md_cell(c) for c in row) + " |" for row in rows]
+    return "\n".join([head, sep] + body)
+
+
+def render_markdown(b: Built) -> str:
+    a, f = b.appraisal, b.fmt
+    p = a.project
+    src = f"; source file: {Path(p.source).name}" if p.source else ""
+    out = [f"# {p.name}", "",
+           f"Real-options appraisal by realopt {__version__}{src}. Money in {f.unit_label}, "
+           "valued today; years from today.", "", f"> {CAUTION}", ""]
+    for heading, blocks in _sections(b):
+        out += [f"## {heading}", ""]
+        for blk in blocks:
+            kind = blk[0]
+            if kind in ("p", "note"):
+                out += [blk[1], ""]
+            elif kind == "decision":
+                out += [f"**{blk[1]}**", ""]
+            elif kind == "caution":
+                out += [f"> {blk[1]}", ""]
+            elif kind == "list":
+                out += [f"- {x}" for x in blk[1]] + [""]
+            elif kind == "figure":
+                chart = next(c for c in b.charts if c.slug == blk[1])
+                out += [f"![{chart.title}](figures/{chart.slug}.png)", "",
+                        f"*{chart.title}.* {chart.caption}", ""]
+            elif kind == "table":
+                _, headers, rows, num_cols, _t = blk
+                out += [_md_table(headers, rows, num_cols), ""]
+            elif kind == "card":
+                r = blk[1]
+                out += [f"### {r.name} ({r.type})", "", r.rule, "",
+                        _md_table(["", ""], _right_facts(r, f)), ""]
+    return "\n".join(out).rstrip() + "\n"
+
+
+# ------------------------------------------------------------------------ PDF
+A4 = (8.27, 11.69)
+MARGIN = 0.75                      # inches
+LINE = 0.165                       # inches per line of 8.5 pt text ...
+SPACING = 1.18                     # ... matplotlib's linespacing giving that advance
+PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
+
+
+class _Pages:
+    """Text pages laid out top to bottom with a cursor; a new page when one is full."""
+
+    def __init__(self, pdf, b: Built):
+        self.pdf, self.b = pdf, b
+        self.fig = None
+        self.y = 0.0
+
+    def _new(self, heading: str):
+        from . import style
+
+        self.close()
+        self.fig = style.new_figure(A4[1], A4[0])
+        self.fig.set_layout_engine("none")
+        self.y = A4[1] - MARGIN
+        self.b.pdf_pages.append(heading)
+
+    def close(self):
+        if self.fig is not None:
+            self._footer(self.fig)
+            self.pdf.savefig(self.fig)
+            self.fig = None
+
+    def _footer(self, fig):
+        n = len(self.b.pdf_pages)
+        fig.text(MARGIN / A4[0], 0.45 / A4[1], f"{self.b.appraisal.project.name} - realopt "
+                 f"{__version__}", fontsize=7, color="#6b6b6b")
+        fig.text(1 - MARGIN / A4[0], 0.45 / A4[1], f"page {n}", fontsize=7, color="#6b6b6b",
+                 ha="right")
+
+    def need(self, height: float, heading: str):
+        if self.fig is None or self.y - height < MARGIN + 0.3:
+            self._new(heading)
+
+    def text(self, x: float, txt: str, size=8.5, weight="normal", color="#222222",
+             ha="left", width_chars=None):
+        """A wrapped paragraph, one text object per page it spans."""
+        lines = textwrap.wrap(txt, width_chars or int(100 * 8.5 / size)) or [""]
+        h = LINE * size / 8.5
+        while lines:
+            self.need(h, self.b.pdf_pages[-1] if self.b.pdf_pages else "")
+            room = max(1, int((self.y - MARGIN - 0.3) / h))
+            chunk, lines = lines[:room], lines[room:]
+            self.fig.text(x / A4[0], self.y / A4[1], "\n".join(chunk), fontsize=size,
+                          fontweight=weight, color=color, ha=ha, va="top",
+                          linespacing=SPACING)
+            self.y -= h * len(chunk)
+
+    def gap(self, h=0.08):
+        self.y -= h
+
+    def heading(self, txt: str, new_page: bool = False):
+        if new_page or self.fig is None:
+            self._new(txt)
+        else:
+            self.need(0.9, txt)
+        self.gap(0.05)
+        self.text(MARGIN, txt, size=12, weight="bold", color="#1d3f6e")
+        self.gap(0.06)
+
+    def table(self, headers, rows, widths, num_cols=()):
+        """Rows of cells (text, or (value, text) for numbers); widths in inches."""
+        xs = [MARGIN]
+        for w in widths[:-1]:
+            xs.append(xs[-1] + w)
+        size = 7.8
+        h = LINE * size / 8.5
+
+        def cells(row):
+            out = []
+            for k, c in enumerate(row):
+                t = c[1] if isinstance(c, tuple) else str(c)
+                chars = max(8, int(widths[k] * 72 / (size * 0.56)))
+                out.append(textwrap.wrap(t, chars) or [""])
+            return out
+
+        def draw(row, weight="normal"):
+            cs = cells(row)
+            n = max(len(c) for c in cs)
+            self.need(n * h + 0.04, self.b.pdf_pages[-1])
+            for k, lines in enumerate(cs):
+                right = k in num_cols
+                x = xs[k] + widths[k] - 0.05 if right else xs[k]
+                self.fig.text(x / A4[0], self.y / A4[1], "\n".join(lines), fontsize=size,
+                              fontweight=weight, ha="right" if right else "left", va="top",
+                              color="#222222", linespacing=SPACING,
+                              multialignment="right" if right else "left")
+            self.y -= n * h + 0.04
+
+        if any(headers):
+            draw(headers, "bold")
+        for row in rows:
+            draw(row)
+        self.gap()
+
+
+def write_pdf(b: Built, path: Path) -> None:
+    """The report as A4 pages: text sections, then one figure per page with its caption."""
+    from matplotlib.backends.backend_pdf import PdfPages
+
+    from . import figures, style
+
+    a, f = b.appraisal, b.fmt
+    p = a.project
+    meta = {"Title": f"{p.name} - real-options appraisal", "Creator": f"realopt {__version__}",
+            "Producer": f"realopt {__version__}", "CreationDate": None}
+    full = A4[0] - 2 * MARGIN
+    with style.styled(), PdfPages(path, metadata=meta) as pdf:
+        pg = _Pages(pdf, b)
+        pg.heading(p.name, new_page=True)
+        pg.text(MARGIN, f"Real-options appraisal by realopt {__version__}. Money in "
+                        f"{f.unit_label}, valued today; years from today.", size=8.5,
+                color="#6b6b6b")
+        pg.gap(0.1)
+        pg.text(MARGIN, CAUTION, size=8.5)
+        for heading, blocks in _sections(b):
+            figure_blocks = [blk for blk in blocks if blk[0] == "figure"]
+            text_blocks = [blk for blk in blocks if blk[0] != "figure"]
+            if text_blocks:
+                pg.heading(heading, new_page=heading in ("Decision rule card",
+                                                         "Inputs and assumptions"))
+                for blk in text_blocks:
+                    _pdf_block(pg, blk, f, full)
+            for blk in figure_blocks:
+                pg.close()
+                chart = next(c for c in b.charts if c.slug == blk[1])
+                _figure_page(pdf, b, chart)
+        pg.close()
+
+
+def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
+    kind = blk[0]
+    if kind in ("p", "note", "caution"):
+        pg.text(MARGIN, blk[1], size=8.5, color="#6b6b6b" if kind == "note" else "#222222")
+        pg.gap()
+    elif kind == "decision":
+        pg.text(MARGIN, blk[1], size=10.5, weight="bold")
+        pg.gap()
+    elif kind == "list":
+        for item in blk[1]:
+            pg.text(MARGIN, "- " + item, size=8.5)
+        pg.gap()
+    elif kind == "table":
+        _, headers, rows, num_cols, _t = blk
+        n = len(headers)
+        if n == 3 and not num_cols:
+            widths = [1.5, 2.1, full - 3.6]
+        elif n == 2:
+            widths = [2.4, full - 2.4]
+        else:
+            first = full - 1.25 * (n - 1)
+            widths = [first] + [1.25] * (n - 1)
+        pg.table(headers, rows, widths, num_cols)
+    elif kind == "card":
+        r = blk[1]
+        pg.need(0.8, pg.b.pdf_pages[-1])
+        pg.text(MARGIN, f"{r.name} ({r.type})", size=9.5, weight="bold")
+        pg.text(MARGIN, r.rule, size=8.5)
+        pg.table(["", ""], _right_facts(r, f), [2.4, full - 2.4])
+
+
+def _figure_page(pdf, b: Built, chart) -> None:
+    """One A4 page: the figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption."""
+    import numpy as np
+
+
+    from . import style
+
+    fig = style.new_figure(A4[1], A4[0])
+    fig.set_layout_engine("none")
+    b.pdf_pages.append(chart.title)
+    from PIL import Image
+
+    with Image.open(io.BytesIO(b.pngs[chart.slug])) as im:
+        im = im.convert("RGB")
+        scale = PDF_DPI / (im.info.get("dpi", (style.DPI,))[0] or style.DPI)
+        if scale < 1:
+            im = im.resize((round(im.width * scale), round(im.height * scale)), Image.BOX)
+        img = np.asarray(im)
+    w = A4[0] - 2 * MARGIN
+    h = w * img.shape[0] / img.shape[1]
+    h_max = A4[1] - 2 * MARGIN - 1.2
+    if h > h_max:
+        w, h = w * h_max / h, h_max
+    top = A4[1] - MARGIN
+    ax = fig.add_axes((MARGIN / A4[0], (top - h) / A4[1], w / A4[0], h / A4[1]))
+    ax.imshow(img, interpolation="none")
+    ax.set_axis_off()
+    y = top - h - 0.2
+    fig.text(MARGIN / A4[0], y / A4[1], "\n".join(textwrap.wrap(chart.caption, 112)),
+             fontsize=8.5, va="top", linespacing=SPACING)
+    n = len(b.pdf_pages)
+    fig.text(MARGIN / A4[0], 0.45 / A4[1], f"{b.appraisal.project.name} - realopt "
+             f"{__version__}", fontsize=7, color="#6b6b6b")
+    fig.text(1 - MARGIN / A4[0], 0.45 / A4[1], f"page {n}", fontsize=7, color="#6b6b6b",
+             ha="right")
+    pdf.savefig(fig)
