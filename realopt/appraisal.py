@@ -366,35 +366,38 @@ def _crossing(x_far, x_near, x_in, g_far, g_near, g_in, smooth: bool) -> float:
     return float(x_near + min(1.0, max(0.0, w)) * (x_in - x_near))
 
 
-def _thresholds(sol: Solution, state: int, edge_ids, sample) -> list[Threshold]:
+def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
+    """Exercise region bounds of each edge from ``state`` at each step it is open."""
     grid, graph, pol = sol.grid, sol.graph, sol.policy
-    runs = pol.runs.get(state, {})
+    rights = {r.name: r for r in graph.rights}
     out = []
-    for i in sample:
-        if i not in runs:
-            continue
-        act = pol.actions(state, int(i))
-        v = grid.nodes_ex(int(i))
-        for e_id in edge_ids:
-            e = graph.edges[e_id]
-            idx = np.flatnonzero(act == e_id + 1)
-            label = e.label if e.kind == "switch" else e.kind
-            if idx.size == 0:
-                out.append(Threshold(float(grid.times[i]), graph.states[state].label, label,
-                                     None, None, never=True))
+    label_of = graph.states[state].label
+    for e_id in edge_ids:
+        e = graph.edges[e_id]
+        label = e.label if e.kind == "switch" else e.kind
+        open_at = exercise_steps(grid, rights[e.right])
+        for i in steps:
+            i = int(i)
+            if not open_at[i]:
                 continue
-            lo, hi = idx[0], idx[-1]
-            g = pol.gains[(state, int(i), e_id)]
-            smooth = (state, int(i) + 1, e_id) in pol.gains
+            year = float(grid.times[i])
+            g = pol.gains.get((state, i, e_id))
+            if g is None:
+                out.append(Threshold(year, label_of, label, None, None, never=True))
+                continue
+            lo, hi = g[0], g[1]
+            smooth = (state, i + 1, e_id) in pol.gains
             lower = upper = None
-            if lo > 0:
-                lower = _crossing(v[lo - 2] if lo > 1 else None, v[lo - 1], v[lo],
-                                  g[0], g[1], g[2], smooth)
-            if hi < i:
-                upper = _crossing(v[hi + 2] if hi + 2 <= i else None, v[hi + 1], v[hi],
-                                  g[5], g[4], g[3], smooth)
-            out.append(Threshold(float(grid.times[i]), graph.states[state].label, label,
-                                 lower, upper))
+            if lo > 0 or hi < i:
+                v = grid.nodes_ex(i)
+                if lo > 0:
+                    lower = _crossing(v[lo - 2] if lo > 1 else None, v[lo - 1], v[lo],
+                                      g[2], g[3], g[4], smooth)
+                if hi < i:
+                    upper = _crossing(v[hi + 2] if hi + 2 <= i else None, v[hi + 1], v[hi],
+                                      g[7], g[6], g[5], smooth)
+            out.append(Threshold(year, label_of, label, lower, upper))
+    out.sort(key=lambda t: t.year)
     return out
 
 

@@ -45,7 +45,7 @@ class Grid:
     fixed_beyond: float          # value at the horizon of 1 a year of fixed flow after it
     warnings: tuple[str, ...] = ()
 
-    @property
+    @cached_property
     def times(self) -> np.ndarray:
         return np.arange(self.steps + 1) * self.step_years
 
@@ -214,7 +214,9 @@ class Policy:
     Steps where the state has no choice are absent."""
 
     runs: dict = field(default_factory=dict)
-    gains: dict = field(default_factory=dict)     # (state, step, edge) -> gains at boundaries
+    # (state, step, edge) -> (first, last node of its exercise region, gains over carrying on at
+    # nodes first-2, first-1, first, last, last+1, last+2; None outside the slice)
+    gains: dict = field(default_factory=dict)
 
     def actions(self, state: int, step: int) -> np.ndarray:
         starts, codes = self.runs.get(state, {}).get(step, (np.array([0]), np.array([0])))
@@ -259,7 +261,7 @@ def _record(policy, i, edges, cands, act, H, live):
 
         def at(j):
             return float(gain[j]) if 0 <= j <= i else None
-        policy.gains[(live[src], i, e_id)] = (at(lo - 2), at(lo - 1), at(lo),
+        policy.gains[(live[src], i, e_id)] = (lo, hi, at(lo - 2), at(lo - 1), at(lo),
                                              at(hi), at(hi + 1), at(hi + 2))
 
 
@@ -343,33 +345,36 @@ def occupancy(sol: Solution, p: float):
     S, E, N = len(graph.states), len(graph.edges), grid.steps
     state_prob = np.zeros((N + 1, S))
     exercised = np.zeros((N + 1, E))
-    pi = np.zeros((S, 1))
+    bufs = (np.zeros((S, N + 1)), np.zeros((S, N + 1)))
+    pi = bufs[0][:, :1]
     pi[graph.initial, 0] = 1.0
     absorbed = np.zeros(S)
+    targets = [e.target for e in graph.edges]
+    gone = [graph.states[t].abandoned for t in targets]
     for i in range(N + 1):
         if i > 0:
-            nxt = np.zeros((S, i + 1))
-            nxt[:, :-1] += (1.0 - p) * pi
+            nxt = bufs[i % 2][:, :i + 1]
+            np.multiply(pi, 1.0 - p, out=nxt[:, :i])
+            nxt[:, i] = 0.0
             nxt[:, 1:] += p * pi
             pi = nxt
         moves = []
         for s, steps in pol.runs.items():
             if i not in steps:
                 continue
-            act = pol.actions(s, i)
-            for code in np.unique(act):
-                if code == 0:
-                    continue
-                e = graph.edges[code - 1]
-                mass = np.where(act == code, pi[s], 0.0)
-                moves.append((s, e, code - 1, mass))
-        for s, e, e_id, mass in moves:
-            pi[s] -= mass
-            if graph.states[e.target].abandoned:
-                absorbed[e.target] += mass.sum()
+            starts, codes = steps[i]
+            ends = np.append(starts[1:], i + 1)
+            for a, b, code in zip(starts.tolist(), ends.tolist(), codes.tolist()):
+                if code:
+                    moves.append((s, code - 1, a, b, pi[s, a:b].copy()))
+        for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
+            pi[s, a:b] -= mass
+            total = mass.sum()
+            if gone[e_id]:
+                absorbed[targets[e_id]] += total
             else:
-                pi[e.target] += mass
-            exercised[i, e_id] = mass.sum()
+                pi[targets[e_id], a:b] += mass
+            exercised[i, e_id] += total
         state_prob[i] = pi.sum(axis=1) + absorbed
     return state_prob, exercised
 
