@@ -522,11 +522,7 @@ def test_flake_line_demo_loads_and_appraises(repo_root):
     # appraisal echoes our estimate, and V0 is the PV of the drivers' expected flows.
     import realopt
 
-    demo = repo_root / "projects" / "flake_line.yaml"
-    if not demo.exists():
-        pytest.skip("projects/flake_line.yaml is not in this checkout yet (it waits for "
-                    "tests/test_cli.py to read an estimated volatility, see issue 5)")
-    project = realopt.load_project(demo)
+    project = realopt.load_project(repo_root / "projects" / "flake_line.yaml")
     model = project.underlying.drivers
     assert model is not None and model.correlation == (("flake_price", "bale_cost", 0.7),)
     ours = simulate_underlying(model, project.underlying.volatility_estimate, project.market)
