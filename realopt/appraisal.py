@@ -573,13 +573,18 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
 
 
 def _fan(grid: Grid, steps):
-    """Percentiles and means of project value (after each date's flow) at ``steps``."""
+    """Percentiles and means of project value (after each date's flow) at ``steps``.
+
+    Percentiles treat each node's probability as spread evenly over its cell in ln V (width
+    ln(u/d)), so they move smoothly with the date instead of jumping from node to node (and
+    between the node sets of odd and even steps)."""
     p = grid.real_probability
     N = grid.steps
     logfact = np.concatenate([[0.0], np.cumsum(np.log(np.arange(1, N + 1)))])
     fan = {q: np.empty(len(steps)) for q in PERCENTILES}
     mean_rw = np.empty(len(steps))
     mean_rn = np.empty(len(steps))
+    cell = math.log(grid.up / grid.down)          # log spacing of the nodes at one step
     for col, i in enumerate(steps):
         i = int(i)
         v = grid.nodes_ex(i)
@@ -592,7 +597,11 @@ def _fan(grid: Grid, steps):
             pmf[i if p >= 1.0 else 0] = 1.0
         cdf = np.cumsum(pmf)
         for q in PERCENTILES:
-            fan[q][col] = v[min(i, int(np.searchsorted(cdf, q / 100.0)))]
+            k = min(i, int(np.searchsorted(cdf, q / 100.0)))
+            fan[q][col] = v[k]
+            if i > 0 and v[k] > 0 and pmf[k] > 0:   # node mass spread over its log cell
+                w = min(1.0, max(0.0, (q / 100.0 - (cdf[k] - pmf[k])) / pmf[k]))
+                fan[q][col] = v[k] * math.exp((w - 0.5) * cell)
         mean_rw[col] = float(pmf @ v)
         growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
         mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
