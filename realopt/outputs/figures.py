@@ -57,19 +57,28 @@ def _today_marker(ax, v0, f: Fmt, text_side="right"):
 
 def _action_styles(a) -> dict:
     """One fill and hatch per action across every decision map (by right, in file order), so a
-    right keeps its colour from map to map; 'carry on' is the near-white first fill."""
-    names = ["carry on"]
-    for dm in a.decision_maps:
-        for lab in dm.actions:
-            if lab not in names:
-                names.append(lab)
+    right keeps its colour from map to map. Each map's first action is the no-exercise one
+    ('carry on', or 'wait' before investing): it always gets the near-white first fill."""
     order = {r.name: k for k, r in enumerate(a.rights)}
-    rest = sorted(names[1:], key=lambda lab: (order.get(lab.split(": ")[0], 99), lab))
-    out = {"carry on": (style.FILLS[0], style.HATCHES[0])}
+    labels = {lab for dm in a.decision_maps for lab in dm.actions[1:]}
+    rest = sorted(labels, key=lambda lab: (order.get(lab.split(": ")[0], 99), lab))
+    out = {}
     for k, lab in enumerate(rest):
         i = 1 + k % (len(style.FILLS) - 1)
         out[lab] = (style.FILLS[i], style.HATCHES[i])
     return out
+
+
+def _action_text(a, label: str) -> str:
+    """A decision map's action label for a reader: exercising a defer right means investing."""
+    for r in a.rights:
+        if r.type == "defer" and label == r.name:
+            return f"invest now ({r.name})"
+    return label
+
+
+def _map_style(styles, dm, k):
+    return (style.FILLS[0], style.HATCHES[0]) if k == 0 else styles[dm.actions[k]]
 
 
 def _flow_years(project) -> list[float]:
@@ -103,14 +112,6 @@ def _isolated_mask(ys) -> list[bool]:
     left = np.concatenate([[False], ok[:-1]])
     right = np.concatenate([ok[1:], [False]])
     return list(ok & ~left & ~right)
-
-
-def _even_steps(a) -> np.ndarray:
-    """Indices of fan dates on even lattice steps: percentiles of a binomial tree alternate
-    between two node sets from step to step; one parity gives a steady picture."""
-    steps = np.rint(np.asarray(a.fan_years) / a.lattice.step_years).astype(int)
-    keep = np.flatnonzero(steps % 2 == 0)
-    return keep if keep.size >= 2 else np.arange(len(steps))
 
 
 # ------------------------------------------------------------------------ value bridge
@@ -196,17 +197,18 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
     t_edges = _map_edges(dm.times)
     t_edges[0] = max(t_edges[0], dm.times[0])
     v_edges = np.exp(_map_edges(np.log(dm.values)))
-    cmap = ListedColormap([styles[lab][0] for lab in dm.actions])
+    looks = [_map_style(styles, dm, k) for k in range(n)]
+    cmap = ListedColormap([fill for fill, _ in looks])
     ax.pcolormesh(t_edges, v_edges, codes, cmap=cmap, vmin=-0.5, vmax=n - 0.5,
                   shading="flat", rasterized=True, zorder=1)
-    for k, lab in enumerate(dm.actions):
-        hatch = styles[lab][1]
+    for k in range(n):
+        hatch = looks[k][1]
         if not hatch or not np.any(dm.codes == k):
             continue
         ax.contourf(dm.times, dm.values, np.where(dm.codes == k, 1.0, 0.0), levels=[0.5, 1.5],
                     colors="none", hatches=[hatch], zorder=2)
-    handles = [Patch(facecolor=styles[lab][0], edgecolor=style.MUTED, hatch=styles[lab][1],
-                     label=_wrap(lab, 34)) for lab in dm.actions]
+    handles = [Patch(facecolor=looks[k][0], edgecolor=style.MUTED, hatch=looks[k][1],
+                     label=_wrap(_action_text(a, lab), 34)) for k, lab in enumerate(dm.actions)]
     handles.append(Patch(facecolor="white", edgecolor=style.MUTED,
                          label=_wrap("no choice here (outside the rights' windows or the "
                                      "tree)", 34)))
@@ -222,6 +224,7 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
                     continue
                 xs, ys = _broken(*zip(*pts), breaks)
                 what = r.name if r.type != "switch" else f"{r.name}: {action}"
+                what = f"invest ({r.name})" if r.type == "defer" else what
                 line, = ax.plot(xs, ys, color=style.INK, linewidth=1.1,
                                 linestyle=style.DASHES[(k_line + 1) % len(style.DASHES)],
                                 marker=style.MARKERS[k_line % len(style.MARKERS)],
@@ -230,7 +233,9 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
                 handles.append(line)
                 k_line += 1
     _today_marker(ax, a.present_value, f)
-    ax.set_xlim(0, dm.times[-1])
+    cols = np.flatnonzero((dm.codes >= 0).any(axis=0))
+    last = float(dm.times[cols[-1]]) if cols.size else float(dm.times[-1])
+    ax.set_xlim(0, min(float(dm.times[-1]), last + max(0.25, 0.04 * last)))
     _log_axis(ax, dm.values[0], dm.values[-1])
     ax.set_xlabel("Years from today")
     ax.set_ylabel(f"Project value ({f.unit_label}, log scale)")
@@ -247,15 +252,14 @@ def _map_has_thresholds(a, dm) -> bool:
 # ------------------------------------------------------------------------ thresholds
 def _draw_thresholds(fig, a, f: Fmt):
     ax = fig.subplots()
-    ev = _even_steps(a)
-    years = np.asarray(a.fan_years)[ev]
-    ax.fill_between(years, a.fan[25][ev], a.fan[75][ev], color="#e4e4e4", linewidth=0,
+    years = np.asarray(a.fan_years)
+    ax.fill_between(years, a.fan[25], a.fan[75], color="#e4e4e4", linewidth=0,
                     zorder=1, label="middle half of project value (25-75%, real-world)")
     ax.plot(a.fan_years, a.expected_real_world, color=style.MUTED, linewidth=1.2, zorder=2,
             label="expected project value (real-world)")
     k = 0
     breaks = _flow_years(a.project)
-    ys_all = [a.present_value, *a.fan[25][ev], *a.fan[75][ev]]
+    ys_all = [a.present_value, *a.fan[25], *a.fan[75]]
     for r in a.rights:
         ts = [t for t in r.thresholds if not t.never]
         for action in dict.fromkeys(t.action for t in ts):
@@ -267,6 +271,7 @@ def _draw_thresholds(fig, a, f: Fmt):
                 ys_all += [y for _, y in pts]
                 xs, ys = _broken(*zip(*pts), breaks)
                 what = r.name if r.type != "switch" else f"{r.name}: {action}"
+                what = f"invest ({r.name})" if r.type == "defer" else what
                 st = style.line_style(k)
                 every = _isolated_mask(ys)
                 if not any(every):
@@ -306,18 +311,17 @@ def _draw_chance(fig, a, f: Fmt):
 # ------------------------------------------------------------------------ value fan
 def _draw_fan(fig, a, f: Fmt):
     ax = fig.subplots()
-    ev = _even_steps(a)
-    x = np.asarray(a.fan_years)[ev]
-    ax.fill_between(x, a.fan[5][ev], a.fan[95][ev], color="#dbe5f1", linewidth=0,
+    x = np.asarray(a.fan_years)
+    ax.fill_between(x, a.fan[5], a.fan[95], color="#dbe5f1", linewidth=0,
                     label="5-95% of outcomes")
-    ax.fill_between(x, a.fan[25][ev], a.fan[75][ev], color="#9fbadb", linewidth=0,
+    ax.fill_between(x, a.fan[25], a.fan[75], color="#9fbadb", linewidth=0,
                     label="25-75% of outcomes")
-    ax.plot(x, a.fan[50][ev], color=style.NAVY, linewidth=1.4, label="median")
+    ax.plot(x, a.fan[50], color=style.NAVY, linewidth=1.4, label="median")
     ax.plot(a.fan_years, a.expected_real_world, color=style.ORANGE, linestyle="--",
             linewidth=1.4, label="expected value")
     _today_marker(ax, a.present_value, f)
     ax.set_xlim(0, a.fan_years[-1])
-    top = float(np.max(a.fan[95][ev]))
+    top = float(np.max(a.fan[95]))
     ax.set_ylim(0, top * 1.08)
     from matplotlib.ticker import FuncFormatter
 

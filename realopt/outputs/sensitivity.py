@@ -13,6 +13,10 @@ Moves (defaults in :data:`DEFAULT_MOVES`, stated in the figure and the tables):
   (or the present value), each right's cost, savings, salvage, switching costs and fixed mode
   flows, and each expand/contract scale (a contraction is capped below 100%).
 
+For a project whose cash flows come from drivers, the volatility and cash-flow moves keep the
+simulated expected cash flows as they are (no new simulation, so no simulation noise in the
+difference); the rate moves re-run the simulation with the file's own paths and seed.
+
 Break-evens: the volatility and the investment cost (the outlays, with any defer right's own
 cost moved in proportion) nearest to today's at which the decision today changes, found by a
 scan then bisection; None where the decision does not change inside the searched range.
@@ -24,7 +28,7 @@ from dataclasses import dataclass, field, replace
 from typing import Callable
 
 from ..errors import RealoptError
-from ..model import Abandon, Contract, Defer, Expand, Mode, Project, Schedule, Switch
+from ..model import Abandon, Contract, Defer, Expand, Project, Schedule, Switch, Underlying
 
 VOL_RANGE = (0.02, 1.50)          # searched for the volatility break-even (yearly sigma)
 COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even (x today's cost)
@@ -118,8 +122,22 @@ def _replace_right(p: Project, name: str, **changes) -> Project:
                                    for r in p.rights))
 
 
+def _frozen_flows(p: Project, k: float = 1.0, sigma: float | None = None) -> Project:
+    """A driver-based project as the cash-flow form the lattice sees: the same expected cash
+    flows (times ``k``) and the same volatility (or ``sigma``), without a new simulation, so a
+    move of one input is not blurred by simulation noise."""
+    from ..underlying import resolve
+
+    res = resolve(p)
+    u = Underlying(cash_flows=tuple((t, c * k) for t, c in zip(res.flow_times, res.cash_flows)),
+                   volatility=res.volatility if sigma is None else sigma)
+    return replace(p, underlying=u)
+
+
 def _with_volatility(p: Project, sigma: float) -> Project:
     u = p.underlying
+    if u.drivers is not None:
+        return _frozen_flows(p, sigma=sigma)
     return replace(p, underlying=replace(u, volatility=sigma, volatility_estimate=None))
 
 
@@ -133,7 +151,9 @@ def _money_inputs(p: Project):
         out.append(("Expected cash flows", lambda k: replace(p, underlying=replace(
             u, cash_flows=tuple((y, c * k) for y, c in u.cash_flows),
             terminal_value=u.terminal_value * k))))
-    elif u.present_value is not None and u.drivers is None:
+    elif u.drivers is not None:
+        out.append(("Expected cash flows", lambda k: _frozen_flows(p, k)))
+    elif u.present_value is not None:
         out.append(("Present value of the project", lambda k: replace(p, underlying=replace(
             u, present_value=u.present_value * k))))
     for r in p.rights:
