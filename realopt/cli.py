@@ -251,6 +251,7 @@ def _check_text(path, project, pl) -> str:
         lines.append("  appraise would refuse this run: " + refusal)
     warnings = list(pl.warnings)
     lines.append("  warnings: none" if not warnings else "  warnings:")
+    lines = [lines[0]] + [_wrap(x.strip(), "  ", "      ") for x in lines[1:]]
     lines += [_wrap(w, "    - ", "      ") for w in warnings]
     return "\n".join(lines)
 
@@ -407,6 +408,7 @@ def _volatility_text(a) -> str:
 COMMANDS = (
     _register_check,
     _register_appraise,
+    "realopt.outputs.command:register",
 )
 
 
@@ -420,7 +422,9 @@ def build_parser() -> argparse.ArgumentParser:
             investment, and the rights to wait, expand, contract, abandon or switch), then:
               check     validate the file and show the lattice that would be built
               appraise  print the static NPV, the value of each right, the expanded NPV and
-                        when to use each right"""),
+                        when to use each right
+              report    write the decision-paper report (HTML, PDF, Markdown, JSON, CSV,
+                        figures) to a folder"""),
         epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -461,7 +465,7 @@ def main(argv=None) -> int:
         return exc.code if isinstance(exc.code, int) else 2
     if getattr(args, "run", None) is None:
         parser.print_usage(sys.stderr)
-        _err(f"{PROG}: error: name a command (check, appraise); see {PROG} --help")
+        _err(f"{PROG}: error: name a command (check, appraise, report); see {PROG} --help")
         return 2
     try:
         return args.run(args)

@@ -231,10 +231,11 @@ def test_demo_check_prints_the_lattice(demo_projects, cli, engine):
         u = math.exp(resolve(proj).volatility * math.sqrt(dt))
         g = proj.market.risk_free_growth(dt) * math.exp(-proj.underlying.payout_yield * dt)
         prob = (g - 1 / u) / (u - 1 / u)
-        assert f"up {u:.6g}, down {1 / u:.6g}" in res.out
-        assert f"risk-neutral probability {prob:.6g}" in res.out
-        assert f"{int(round(proj.horizon / dt))} steps" in res.out
-        assert "valid" in res.out and "memory about" in res.out
+        out = " ".join(res.out.split())                # lines are wrapped at 100 columns
+        assert f"up {u:.6g}, down {1 / u:.6g}" in out
+        assert f"risk-neutral probability {prob:.6g}" in out
+        assert f"{int(round(proj.horizon / dt))} steps" in out
+        assert "valid" in out and "memory about" in out
 
 
 def test_demo_appraise_prints_the_headline_table(demo_projects, cli, engine):
