@@ -50,7 +50,8 @@ def _log_axis(ax, lo, hi):
 def _today_marker(ax, v0, f: Fmt, text_side="right"):
     ax.plot([0], [v0], marker="o", markersize=6, color=style.INK, zorder=6, clip_on=False,
             linestyle="none")
-    ax.annotate(f"today {f.money(v0)}", (0, v0), xytext=(6, 6), textcoords="offset points",
+    ax.annotate(f"today {f.money(v0)}", (0, v0), xytext=(7, -4), textcoords="offset points",
+                va="top",
                 fontsize=7.5, color=style.INK, zorder=7,
                 bbox={"boxstyle": "round,pad=0.2", "fc": "white", "ec": "none", "alpha": 0.8})
 
@@ -346,9 +347,12 @@ def _draw_tornado(fig, a, s, f: Fmt):
              "Flexibility value")):
         for yy, r in zip(y, rows):
             lo, hi = getattr(r, lo_attr), getattr(r, hi_attr)
-            ax.barh(yy, lo - base, left=base, height=0.62, color=style.ORANGE, zorder=3)
-            ax.barh(yy, hi - base, left=base, height=0.62, color=style.NAVY, zorder=3,
-                    hatch="//", edgecolor="white", linewidth=0)
+            bars = [(lo - base, {"color": style.ORANGE}),
+                    (hi - base, {"color": style.NAVY, "hatch": "//", "edgecolor": "white",
+                                 "linewidth": 0})]
+            bars.sort(key=lambda b: -abs(b[0]))       # the shorter bar on top stays visible
+            for width, look in bars:
+                ax.barh(yy, width, left=base, height=0.62, zorder=3, **look)
         ax.axvline(base, color=style.INK, linewidth=0.9, zorder=4)
         ax.set_title(f"{title} (base {f.money(base)})", fontsize=8.5, loc="left")
         ax.set_xlabel(f"{f.unit_label}")

@@ -511,6 +511,7 @@ MARGIN = 0.75                      # inches
 LINE = 0.165                       # inches per line of 8.5 pt text ...
 SPACING = 1.18                     # ... matplotlib's linespacing giving that advance
 PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
+DPI_PNG = 300
 
 
 class _Pages:
@@ -564,11 +565,51 @@ class _Pages:
     def gap(self, h=0.08):
         self.y -= h
 
-    def heading(self, txt: str, new_page: bool = False):
+    def _figure_size(self, chart):
+        """(width, height) in inches of the figure on the page, and its caption lines."""
+        from PIL import Image
+
+        with Image.open(io.BytesIO(self.b.pngs[chart.slug])) as im:
+            wpx, hpx = im.size
+        w = A4[0] - 2 * MARGIN
+        h = w * hpx / wpx
+        h_max = A4[1] - 2 * MARGIN - 1.4
+        if h > h_max:
+            w, h = w * h_max / h, h_max
+        return w, h, textwrap.wrap(f"{chart.title}. {chart.caption}", 112)
+
+    def figure_need(self, chart) -> float:
+        w, h, caption = self._figure_size(chart)
+        return h + 0.15 + LINE * len(caption) + 0.15
+
+    def figure(self, chart):
+        """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it."""
+        import numpy as np
+        from PIL import Image
+
+        with Image.open(io.BytesIO(self.b.pngs[chart.slug])) as im:
+            im = im.convert("RGB")
+            scale = PDF_DPI / (im.info.get("dpi", (DPI_PNG,))[0] or DPI_PNG)
+            if scale < 1:
+                im = im.resize((round(im.width * scale), round(im.height * scale)), Image.BOX)
+            img = np.asarray(im)
+        w, h, caption = self._figure_size(chart)
+        if self.fig is None or self.y - self.figure_need(chart) < MARGIN + 0.3:
+            self._new(chart.title)
+        ax = self.fig.add_axes((MARGIN / A4[0], (self.y - h) / A4[1], w / A4[0], h / A4[1]))
+        ax.imshow(img, interpolation="none")
+        ax.set_axis_off()
+        self.y -= h + 0.12
+        self.fig.text(MARGIN / A4[0], self.y / A4[1], "\n".join(caption), fontsize=8.2,
+                      va="top", linespacing=SPACING, color="#222222")
+        self.y -= LINE * len(caption) + 0.2
+
+    def heading(self, txt: str, new_page: bool = False, keep: float = 0.9):
+        """A section heading, kept on one page with the next ``keep`` inches of content."""
         if new_page or self.fig is None:
             self._new(txt)
         else:
-            self.need(0.9, txt)
+            self.need(0.35 + keep, txt)
         self.gap(0.05)
         self.text(MARGIN, txt, size=12, weight="bold", color="#1d3f6e")
         self.gap(0.06)
@@ -610,10 +651,11 @@ class _Pages:
 
 
 def write_pdf(b: Built, path: Path) -> None:
-    """The report as A4 pages: text sections, then one figure per page with its caption."""
+    """The report as A4 pages, in the order of the HTML: text and figures flow down the page
+    (a figure with its caption moves to the next page when it does not fit)."""
     from matplotlib.backends.backend_pdf import PdfPages
 
-    from . import figures, style
+    from . import style
 
     a, f = b.appraisal, b.fmt
     p = a.project
@@ -629,17 +671,16 @@ def write_pdf(b: Built, path: Path) -> None:
         pg.gap(0.1)
         pg.text(MARGIN, CAUTION, size=8.5)
         for heading, blocks in _sections(b):
-            figure_blocks = [blk for blk in blocks if blk[0] == "figure"]
-            text_blocks = [blk for blk in blocks if blk[0] != "figure"]
-            if text_blocks:
-                pg.heading(heading, new_page=heading in ("Decision rule card",
-                                                         "Inputs and assumptions"))
-                for blk in text_blocks:
+            first = blocks[0] if blocks else None
+            keep = (pg.figure_need(next(c for c in b.charts if c.slug == first[1]))
+                    if first and first[0] == "figure" else 0.9)
+            pg.heading(heading, new_page=heading in ("Decision rule card",
+                                                     "Inputs and assumptions"), keep=keep)
+            for blk in blocks:
+                if blk[0] == "figure":
+                    pg.figure(next(c for c in b.charts if c.slug == blk[1]))
+                else:
                     _pdf_block(pg, blk, f, full)
-            for blk in figure_blocks:
-                pg.close()
-                chart = next(c for c in b.charts if c.slug == blk[1])
-                _figure_page(pdf, b, chart)
         pg.close()
 
 
@@ -674,39 +715,3 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
         pg.table(["", ""], _right_facts(r, f), [2.4, full - 2.4])
 
 
-def _figure_page(pdf, b: Built, chart) -> None:
-    """One A4 page: the figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption."""
-    import numpy as np
-
-
-    from . import style
-
-    fig = style.new_figure(A4[1], A4[0])
-    fig.set_layout_engine("none")
-    b.pdf_pages.append(chart.title)
-    from PIL import Image
-
-    with Image.open(io.BytesIO(b.pngs[chart.slug])) as im:
-        im = im.convert("RGB")
-        scale = PDF_DPI / (im.info.get("dpi", (style.DPI,))[0] or style.DPI)
-        if scale < 1:
-            im = im.resize((round(im.width * scale), round(im.height * scale)), Image.BOX)
-        img = np.asarray(im)
-    w = A4[0] - 2 * MARGIN
-    h = w * img.shape[0] / img.shape[1]
-    h_max = A4[1] - 2 * MARGIN - 1.2
-    if h > h_max:
-        w, h = w * h_max / h, h_max
-    top = A4[1] - MARGIN
-    ax = fig.add_axes((MARGIN / A4[0], (top - h) / A4[1], w / A4[0], h / A4[1]))
-    ax.imshow(img, interpolation="none")
-    ax.set_axis_off()
-    y = top - h - 0.2
-    fig.text(MARGIN / A4[0], y / A4[1], "\n".join(textwrap.wrap(chart.caption, 112)),
-             fontsize=8.5, va="top", linespacing=SPACING)
-    n = len(b.pdf_pages)
-    fig.text(MARGIN / A4[0], 0.45 / A4[1], f"{b.appraisal.project.name} - realopt "
-             f"{__version__}", fontsize=7, color="#6b6b6b")
-    fig.text(1 - MARGIN / A4[0], 0.45 / A4[1], f"page {n}", fontsize=7, color="#6b6b6b",
-             ha="right")
-    pdf.savefig(fig)
