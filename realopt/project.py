@@ -1632,16 +1632,7 @@ class _Builder:
                               f"investment.cost is worth {ipv:,.4g} today, so the flexibility is "
                               "not measured against the same commitment as the static NPV; leave "
                               "out the right's cost to use the investment plan, or make them agree")
-        last = None
-        if underlying.cash_flows:
-            last = underlying.cash_flows[-1][0]
-        elif underlying.drivers is not None:
-            last = float(underlying.drivers.years[1])
-        for i, r in enumerate(rights):
-            if last is not None and r.window[1] > last:
-                self.warn(("rights", Index(i), "window"),
-                          f"{r.name}: the window ends at year {r.window[1]:g}, after the last "
-                          f"cash-flow year {last:g}; beyond it the project has no cash flows left")
+        # windows past the last cash-flow year: warned by the valuation (realopt.appraisal)
         if lattice.explicit and underlying.cash_flows:
             for y, _ in underlying.cash_flows:
                 k = y / lattice.step_years
