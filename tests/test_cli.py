@@ -426,3 +426,25 @@ def test_non_ascii_terminal(write_project, minimal_project_text, cli_process, en
     assert res.code == 0, res.text
     _no_traceback(res)
     assert "Usine de B?ziers" in res.out
+
+
+def test_check_reports_every_file(cli, repo_root):
+    good = repo_root / "projects" / "coating_line.yaml"
+    bad = MALFORMED / "reversed_window.yaml"
+    res = cli("check", good, bad, good)
+    assert res.code == 1
+    assert res.out.count(f"{good}: valid") == 2
+    assert f"{bad}:" in res.err and "the start after the end" in res.err
+
+
+def _register_dummy(sub):
+    p = sub.add_parser("dummy", help="a command added through COMMANDS")
+    p.add_argument("word")
+    p.set_defaults(run=lambda args: print(f"dummy {args.word}") or 0)
+
+
+def test_a_command_is_added_in_one_place(cli, monkeypatch):
+    monkeypatch.setattr(cli_module, "COMMANDS", cli_module.COMMANDS + ("test_cli:_register_dummy",))
+    assert "dummy" in cli("--help").out
+    res = cli("dummy", "hello")
+    assert res.code == 0 and res.out == "dummy hello\n"
