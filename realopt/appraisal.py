@@ -19,7 +19,7 @@ from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project, Switch
 from .rights import (StateGraph, build_state_graph, prepared_rights, requirement_closure,
-                     unusable_rights, usable_subset)
+                     structure_warnings, usable_subset)
 from .underlying import ResolvedUnderlying, resolve
 
 MAX_RIGHTS = 10
@@ -260,20 +260,8 @@ def appraise(project: Project) -> Appraisal:
         _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
                      (rw_state, rw_ex), sample, fmt, v0)
         for r in val.rights)
-    warnings = list(project.warnings) + list(grid.warnings)
-    for name in unusable_rights(graph):
-        warnings.append(f"Right '{name}' can never be used: its requires/excludes rule out every "
-                        "state; it adds nothing.")
-    if val.res.last_flow_year is not None and grid.horizon > val.res.last_flow_year + 1e-9:
-        warnings.append(f"Some windows run past the last cash-flow year "
-                        f"({val.res.last_flow_year:g}); the project is worth nothing after it.")
-    last = val.res.last_flow_year
-    for r in val.rights:
-        if r.kind == "abandon" and last is not None and r.window[1] >= last - 1e-9:
-            warnings.append(f"'{r.name}' can be used at or after the last cash-flow year "
-                            f"({last:g}), when the operating project is worth nothing more: its "
-                            "salvage there is received on top of the terminal value. End the "
-                            "window earlier unless that is intended.")
+    warnings = list(project.warnings) + list(grid.warnings) + structure_warnings(
+        graph, val.res.last_flow_year, grid.horizon)
     fan_steps = _sample_steps(grid.steps, limit=120)
     fan_years, fan, mean_rw, mean_rn = _fan(grid, fan_steps)
     return Appraisal(

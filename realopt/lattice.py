@@ -381,7 +381,7 @@ def occupancy(sol: Solution, p: float):
 
 def plan(project: Project) -> Plan:
     """Grid and cost estimate without solving (for ``realopt check`` and the memory guard)."""
-    from .rights import build_state_graph, prepared_rights
+    from .rights import build_state_graph, prepared_rights, structure_warnings
     from .underlying import resolve
 
     res = resolve(project)
@@ -395,4 +395,5 @@ def plan(project: Project) -> Plan:
     return Plan(steps=grid.steps, step_years=grid.step_years, horizon=grid.horizon, up=grid.up,
                 down=grid.down, probability=grid.probability, states=len(graph.states),
                 solves=solves, memory_bytes=grid.memory_bytes(live), seconds_estimate=seconds,
-                warnings=tuple(project.warnings) + grid.warnings)
+                warnings=tuple(project.warnings) + grid.warnings + tuple(structure_warnings(
+                    graph, res.last_flow_year, grid.horizon)))

@@ -245,3 +245,21 @@ def unusable_rights(sg: StateGraph) -> list[str]:
     """Rights that no state allows (e.g. a requirement that an exclusion makes impossible)."""
     seen = {e.right for e in sg.edges}
     return [r.name for r in sg.rights if r.name not in seen]
+
+
+def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: float) -> list[str]:
+    """Warnings about how the rights meet the forecast (shown by ``check`` and ``appraise``)."""
+    out = [f"Right '{name}' can never be used: its requires/excludes rule out every state; it "
+           "adds nothing." for name in unusable_rights(sg)]
+    if last_flow_year is None:
+        return out
+    if horizon > last_flow_year + 1e-9:
+        out.append(f"Some windows run past the last cash-flow year ({last_flow_year:g}); the "
+                   "project is worth nothing after it.")
+    for r in sg.rights:
+        if r.kind == "abandon" and r.window[1] >= last_flow_year - 1e-9:
+            out.append(f"'{r.name}' can be used at or after the last cash-flow year "
+                       f"({last_flow_year:g}), when the operating project is worth nothing more: "
+                       "its salvage there is received on top of the terminal value. End the "
+                       "window earlier unless that is intended.")
+    return out
