@@ -579,9 +579,10 @@ def single_action_states(a) -> list[str]:
     return [dm.state for dm in a.decision_maps if len(dm.actions) < 2]
 
 
-def render(chart: Chart, dpi: int = style.DPI):
-    """Draw ``chart`` (title included) once at ``dpi``; returns (PNG bytes, RGB pixel array).
-    The same pixels serve figures/*.png, the HTML and the PDF page."""
+def render(chart: Chart, dpi: int = style.DPI, page_dpi: int | None = None):
+    """Draw ``chart`` (title included) once at ``dpi``; returns (PNG bytes, RGB pixels), the
+    pixels resampled to ``page_dpi`` when given (for the PDF page), else at ``dpi``. The same
+    drawing serves figures/*.png, the HTML and the PDF."""
     import io
 
     from PIL import Image
@@ -594,6 +595,10 @@ def render(chart: Chart, dpi: int = style.DPI):
         fig.set_dpi(dpi)
         fig.canvas.draw()
         rgb = np.asarray(fig.canvas.buffer_rgba())[..., :3].copy()
+    img = Image.fromarray(rgb)
     buf = io.BytesIO()
-    Image.fromarray(rgb).save(buf, format="png", dpi=(dpi, dpi))
+    img.save(buf, format="png", dpi=(dpi, dpi))
+    if page_dpi is not None and page_dpi < dpi:
+        k = page_dpi / dpi
+        rgb = np.asarray(img.resize((round(img.width * k), round(img.height * k)), Image.BOX))
     return buf.getvalue(), rgb

@@ -31,6 +31,7 @@ from .tables import (Fmt, breakeven_text, chance_by_year, csv_tables, inputs_row
                      lattice_rows)
 
 MARKER = ".realopt-report"
+PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
 CONVENTIONS = (
     "Years are counted from today (t = 0). Cash flows are paid at their dates; a decision at a "
     "date is taken after that date's cash flow, so exercising at t acquires or gives up the flows "
@@ -54,6 +55,7 @@ class Built:
     fmt: Fmt
     charts: list
     pngs: dict = field(default_factory=dict)          # slug -> PNG bytes
+    pixels: dict = field(default_factory=dict)        # slug -> RGB array at PDF_DPI
     pdf_pages: list = field(default_factory=list)      # page headings, in order
 
 
@@ -160,8 +162,9 @@ def _write_all(a, s, tmp: Path, dpi: int, xlsx, source) -> None:
     f = Fmt(a.project)
     b = Built(appraisal=a, sensitivity=s, fmt=f, charts=figures.charts(a, s))
     (tmp / "figures").mkdir()
-    for chart, png in zip(b.charts, render_all(b.charts, dpi)):
+    for chart, (png, pixels) in zip(b.charts, render_all(b.charts, dpi)):
         b.pngs[chart.slug] = png
+        b.pixels[chart.slug] = pixels
         (tmp / "figures" / f"{chart.slug}.png").write_bytes(png)
     tables = csv_tables(a, s, f)
     (tmp / "tables").mkdir()
@@ -200,13 +203,14 @@ def _render_one(args):
     from . import figures
 
     k, dpi = args
-    return figures.render(_CHARTS[k], dpi=dpi)[0]
+    return figures.render(_CHARTS[k], dpi=dpi, page_dpi=PDF_DPI)
 
 
-def render_all(charts, dpi: int) -> list[bytes]:
-    """PNG bytes of every chart. Drawing dominates the report's time and each figure is
-    independent, so where the platform forks (Linux) and has several cores, figures are drawn
-    in worker processes that inherit the charts; otherwise one after the other."""
+def render_all(charts, dpi: int) -> list[tuple]:
+    """(PNG bytes, RGB pixels at PDF_DPI) of every chart. Drawing dominates the report's time
+    and each figure is independent, so where the platform forks (Linux) and has several
+    cores, figures are drawn in worker processes that inherit the charts; otherwise one after
+    the other."""
     global _CHARTS
     from . import figures
 
@@ -226,7 +230,7 @@ def render_all(charts, dpi: int) -> list[bytes]:
                     return list(pool.map(_render_one, [(k, dpi) for k in range(len(charts))]))
             finally:
                 _CHARTS = None
-    return [figures.render(c, dpi=dpi)[0] for c in charts]
+    return [figures.render(c, dpi=dpi, page_dpi=PDF_DPI) for c in charts]
 
 
 # ------------------------------------------------------------------------ shared content
@@ -354,11 +358,17 @@ def _sections(b: Built):
         card.append(("p", "The project has no rights: the expanded NPV is the static NPV."))
     cby = chance_by_year(a)
     if len(cby):
-        card.append(("table", ["Right", "Year", "Chance of use, real-world",
-                               "Chance of use, risk-neutral"],
-                     [(r.right, f.year(r.year), (r.real_world, f.pct(r.real_world)),
-                       (r.risk_neutral, f.pct(r.risk_neutral))) for r in cby.itertuples()],
-                     (2, 3), None))
+        names = list(dict.fromkeys(cby["right"]))
+        for measure, label in (("real_world", "real-world (what to expect)"),
+                               ("risk_neutral", "risk-neutral (the valuation measure)")):
+            card.append(("p", f"Chance that each right has been used by each year, {label}:"))
+            rows = []
+            for year, grp in cby.groupby("year", sort=True):
+                by = dict(zip(grp["right"], grp[measure]))
+                rows.append([f.year(year)] + [(by[n], f.pct(by[n])) if n in by else ""
+                                              for n in names])
+            card.append(("table", ["Year"] + names, rows, tuple(range(1, len(names) + 1)),
+                         None))
     out.append(("Decision rule card", card))
     when = [("figure", x) for x in slugs if x.startswith("decision_map_")]
     from .figures import single_action_states
@@ -395,8 +405,12 @@ def _sections(b: Built):
                             "up/down factors in the file."))
     out.append(("Lattice used", lat))
     out.append(("Rights and project states", [("figure", "state_diagram")]))
+    shown, last = [], None
+    for sec, key, value in inputs_rows(a.project, f):     # each section named once
+        shown.append((sec if sec != last else "", key, value))
+        last = sec
     out.append(("Inputs and assumptions", [
-        ("table", ["Section", "Input", "Value"], inputs_rows(a.project, f), (), None),
+        ("table", ["Section", "Input", "Value"], shown, (), None),
         ("p", CONVENTIONS)]))
     out.append(("Warnings", [("list", list(a.warnings))] if a.warnings
                 else [("p", "None.")]))
@@ -510,8 +524,6 @@ A4 = (8.27, 11.69)
 MARGIN = 0.75                      # inches
 LINE = 0.165                       # inches per line of 8.5 pt text ...
 SPACING = 1.18                     # ... matplotlib's linespacing giving that advance
-PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
-DPI_PNG = 300
 
 
 class _Pages:
@@ -567,10 +579,7 @@ class _Pages:
 
     def _figure_size(self, chart):
         """(width, height) in inches of the figure on the page, and its caption lines."""
-        from PIL import Image
-
-        with Image.open(io.BytesIO(self.b.pngs[chart.slug])) as im:
-            wpx, hpx = im.size
+        hpx, wpx = self.b.pixels[chart.slug].shape[:2]
         w = A4[0] - 2 * MARGIN
         h = w * hpx / wpx
         h_max = A4[1] - 2 * MARGIN - 1.4
@@ -584,15 +593,7 @@ class _Pages:
 
     def figure(self, chart):
         """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it."""
-        import numpy as np
-        from PIL import Image
-
-        with Image.open(io.BytesIO(self.b.pngs[chart.slug])) as im:
-            im = im.convert("RGB")
-            scale = PDF_DPI / (im.info.get("dpi", (DPI_PNG,))[0] or DPI_PNG)
-            if scale < 1:
-                im = im.resize((round(im.width * scale), round(im.height * scale)), Image.BOX)
-            img = np.asarray(im)
+        img = self.b.pixels[chart.slug]
         w, h, caption = self._figure_size(chart)
         if self.fig is None or self.y - self.figure_need(chart) < MARGIN + 0.3:
             self._new(chart.title)
@@ -630,10 +631,13 @@ class _Pages:
                 out.append(textwrap.wrap(t, chars) or [""])
             return out
 
-        def draw(row, weight="normal"):
+        def draw(row, weight="normal", header=False):
             cs = cells(row)
             n = max(len(c) for c in cs)
+            page = self.fig
             self.need(n * h + 0.04, self.b.pdf_pages[-1])
+            if self.fig is not page and not header and any(headers):
+                draw(headers, "bold", header=True)        # the header again on a new page
             for k, lines in enumerate(cs):
                 right = k in num_cols
                 x = xs[k] + widths[k] - 0.05 if right else xs[k]
@@ -644,7 +648,7 @@ class _Pages:
             self.y -= n * h + 0.04
 
         if any(headers):
-            draw(headers, "bold")
+            draw(headers, "bold", header=True)
         for row in rows:
             draw(row)
         self.gap()
@@ -662,7 +666,12 @@ def write_pdf(b: Built, path: Path) -> None:
     meta = {"Title": f"{p.name} - real-options appraisal", "Creator": f"realopt {__version__}",
             "Producer": f"realopt {__version__}", "CreationDate": None}
     full = A4[0] - 2 * MARGIN
-    with style.styled(), PdfPages(path, metadata=meta) as pdf:
+    import matplotlib
+
+    # Type 3 embedding of DejaVu Sans: same family as the figures and the HTML, and no
+    # TrueType subsetting pass (a second or so on a long report).
+    with style.styled(), matplotlib.rc_context({"pdf.fonttype": 3}), \
+            PdfPages(path, metadata=meta) as pdf:
         pg = _Pages(pdf, b)
         pg.heading(p.name, new_page=True)
         pg.text(MARGIN, f"Real-options appraisal by realopt {__version__}. Money in "
@@ -699,7 +708,9 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
     elif kind == "table":
         _, headers, rows, num_cols, _t = blk
         n = len(headers)
-        if n == 3 and not num_cols:
+        if headers[0] == "Year":
+            widths = [0.7] + [(full - 0.7) / (n - 1)] * (n - 1)
+        elif n == 3 and not num_cols:
             widths = [1.5, 2.1, full - 3.6]
         elif n == 2:
             widths = [2.4, full - 2.4]

@@ -32,8 +32,8 @@ from ..model import Abandon, Contract, Defer, Expand, Project, Schedule, Switch,
 
 VOL_RANGE = (0.02, 1.50)          # searched for the volatility break-even (yearly sigma)
 COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even (x today's cost)
-SCAN_POINTS = 8
-BISECT_STEPS = 11
+SCAN_POINTS = 6
+BISECT_STEPS = 9
 MAX_CONVERGENCE_STEPS = 4800      # finest grid of the convergence figure (total steps)
 CONTRACT_CAP = 0.99               # a moved contraction keeps some of the project
 
