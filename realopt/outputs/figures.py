@@ -337,7 +337,7 @@ def _draw_tornado(fig, a, s, f: Fmt):
     from matplotlib.patches import Patch
 
     rows = list(s.rows)
-    top, bottom = fig.subfigures(2, 1, height_ratios=[max(2.2, 0.34 * len(rows) + 0.9), 0.9])
+    top, bottom = fig.subfigures(2, 1, height_ratios=[_tornado_height(s), _notes_height(s, f)])
     axes = top.subplots(1, 2, sharey=True)
     y = np.arange(len(rows))[::-1]
     labels = [_wrap(f"{r.input} ({r.low_setting} / {r.high_setting})", 34) for r in rows]
@@ -363,11 +363,23 @@ def _draw_tornado(fig, a, s, f: Fmt):
                         Patch(facecolor=style.NAVY, hatch="//", edgecolor="white",
                               label="input moved up")],
                loc="outside lower right", ncols=2, fontsize=7.5)
+    bottom.text(0.0, 1.0, _notes_text(s, f), va="top", ha="left", fontsize=7.2,
+                color=style.INK, transform=bottom.transSubfigure)
+
+
+def _notes_text(s, f: Fmt) -> str:
     lines = [f"Moves: {s.moves.describe()}."]
     lines += [breakeven_text(b, f, s.decision_today) for b in s.breakevens]
     lines += list(s.notes)
-    bottom.text(0.0, 1.0, "\n".join(_wrap(t, 118) for t in lines), va="top", ha="left",
-                fontsize=7.2, color=style.INK, transform=bottom.transSubfigure)
+    return "\n".join(_wrap(t, 118) for t in lines)
+
+
+def _tornado_height(s) -> float:
+    return max(2.2, 0.34 * len(s.rows) + 0.9)
+
+
+def _notes_height(s, f: Fmt) -> float:
+    return 0.14 * (_notes_text(s, f).count("\n") + 1) + 0.1
 
 
 # ------------------------------------------------------------------------ convergence
@@ -418,8 +430,8 @@ def _state_layout(a):
     for u, v, e in g.edges(data=True):
         verb = "pays" if e["sign"] < 0 else "receives"
         name = ", ".join(e["rights"])
-        what = f"{e['label']}: " if e["label"] not in ("commit", "expand", "contract",
-                                                       "abandon") else ""
+        what = ("invest, " if e["label"] == "commit" else "" if e["label"] in (
+            "expand", "contract", "abandon") else f"{e['label']}: ")
         moves.setdefault(f"{name}: {what}{verb} {e['amount']}", None)
     return g, rows, sink, list(moves)
 
@@ -477,7 +489,9 @@ def _draw_states(fig, a, f: Fmt):
                                      arrowstyle="-|>", mutation_scale=9, color=style.NAVY,
                                      lw=0.9, patchA=boxes[u], patchB=boxes[v], zorder=2))
         name = ", ".join(e["rights"])
-        if e["label"] not in ("commit", "expand", "contract", "abandon"):
+        if e["label"] == "commit":
+            name = f"invest ({name})"
+        elif e["label"] not in ("expand", "contract", "abandon"):
             name = e["label"]
         if v in sink:
             into_sink[name] = into_sink.get(name, 0) + 1
@@ -512,7 +526,8 @@ def charts(a, s) -> list[Chart]:
     out = [Chart(
         "value_bridge", "Value bridge: static NPV to expanded NPV",
         f"Static NPV {money(a.static_npv)} plus each right's Shapley share gives the expanded NPV "
-        f"{money(a.expanded_npv)}; dashed outlines show each right valued alone, and the "
+        f"{money(a.expanded_npv)}; dashed outlines show each right valued alone (with any right "
+        f"it requires), and the "
         f"interaction between the rights is {money(a.interaction)}.",
         max(2.4, 0.42 * (len(a.rights) + 2) + 1.0), lambda fig: _draw_bridge(fig, a, f))]
     flows = bool(_flow_years(a.project))
@@ -557,7 +572,7 @@ def charts(a, s) -> list[Chart]:
             "Longer bars mark the inputs the result depends on most; break-evens below the "
             "tornado give the volatility and investment cost at which today's decision "
             f"(\u201c{a.decision_today}\u201d) changes.",
-            max(3.2, 0.34 * len(s.rows) + 1.9), lambda fig: _draw_tornado(fig, a, s, f)))
+            _tornado_height(s) + _notes_height(s, f), lambda fig: _draw_tornado(fig, a, s, f)))
     if s.convergence is not None:
         c = s.convergence
         gap = f.pct(c.relative_gap, 2) if c.relative_gap is not None else "n/a"

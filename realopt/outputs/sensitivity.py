@@ -17,8 +17,9 @@ For a project whose cash flows come from drivers, the volatility and cash-flow m
 simulated expected cash flows as they are (no new simulation, so no simulation noise in the
 difference); the rate moves re-run the simulation with the file's own paths and seed.
 
-Break-evens: the volatility and the investment cost (the outlays, with any defer right's own
-cost moved in proportion) nearest to today's at which the decision today changes, found by a
+Break-evens: the volatility and the investment cost (every outlay, and any defer right's own
+cost, moved in proportion; stated as the present value of the outlays, the Appraisal's
+``investment_pv`` today) nearest to today's at which the decision today changes, found by a
 scan then bisection; None where the decision does not change inside the searched range.
 """
 from __future__ import annotations
@@ -308,7 +309,7 @@ def breakevens(appraisal) -> list[BreakEven]:
                 q = _replace_right(q, r.name, cost=_scaled(r.cost, k))
         return q
 
-    today = sum(c for _, c in p.investment.outlays)
+    today = appraisal.investment_pv            # every outlay moves by k, so its PV by k
     if today > 0:
         b, db, a, da = _search(decide_with(cost_project), 1.0, *COST_RANGE, base)
         out.append(BreakEven("Investment cost", today, None if b is None else b * today, db,

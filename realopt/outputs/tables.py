@@ -258,7 +258,8 @@ def breakeven_text(b, f: Fmt, decision_today: str) -> str:
     """One sentence per break-even, e.g. 'Volatility: today 30.0%; below 14.7% the decision
     becomes "invest now (...)"; no change up to 150.0%.'"""
     show = f.pct if b.unit == "sigma" else f.money_unit
-    parts = [f"{b.input}: today {show(b.today)} ({decision_today})"]
+    what = b.input if b.unit == "sigma" else f"{b.input} (present value)"
+    parts = [f"{what}: today {show(b.today)} ({decision_today})"]
     if b.below is not None:
         parts.append(f"below {show(b.below)} the decision becomes \u201c{b.decision_below}\u201d")
     else:
