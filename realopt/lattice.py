@@ -20,7 +20,7 @@ import numpy as np
 from .errors import ValuationError
 from .model import Project
 from .rights import StateGraph
-from .underlying import ResolvedUnderlying
+from .underlying import ResolvedUnderlying, intensity
 
 _LOG_LIMIT = 700.0          # exp() stays finite in float64 below ~709
 
@@ -41,7 +41,7 @@ class Grid:
     log_carry: np.ndarray        # (steps+1,) log C_i
     delta: np.ndarray            # (steps+1,) payout fraction at step i (0 if no flow)
     yield_flow: float            # present_value form: exp(q dt) - 1, paid at every step >= 1
-    fixed_at: np.ndarray         # (steps+1,) bool: a state's fixed yearly flow is paid here
+    fixed_weight: np.ndarray     # (steps+1,) years of a state's fixed yearly flow paid at step i
     fixed_beyond: float          # value at the horizon of 1 a year of fixed flow after it
     warnings: tuple[str, ...] = ()
 
@@ -149,7 +149,6 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
         p_real = min(1.0, max(0.0, p_real))
 
     delta = np.zeros(steps + 1)
-    fixed_at = np.zeros(steps + 1, dtype=bool)
     moved = []
     for t, what in _event_dates(project, res):
         if t > horizon + 1e-12:
@@ -163,30 +162,69 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
                         + ("; ..." if len(moved) > 6 else "")
                         + ". Choose steps_per_year so that these dates fall on steps.")
     fixed_beyond = 0.0
-    if res.has_flows:
+    fixed_weight = np.zeros(steps + 1)
+    yield_flow = 0.0
+    if res.has_flows and res.timing == "spread":
+        delta, fixed_weight, fixed_beyond = _spread_payouts(res, market, steps, dt, horizon)
+    elif res.has_flows:
         keep = np.ones(steps + 1)
-        for t, dl in zip(res.flow_times, res.payout):
+        starts = (res.period_start,) + res.flow_times[:-1]
+        for t, dl, t_prev in zip(res.flow_times, res.payout, starts):
             if t <= horizon + 1e-12:
                 k = int(round(t / dt))
                 keep[k] *= 1.0 - dl
-                fixed_at[k] = True
+                fixed_weight[k] += t - t_prev
             else:
-                fixed_beyond += 1.0 / float(market.risk_free_growth(t - horizon))
+                fixed_beyond += (t - t_prev) / float(market.risk_free_growth(t - horizon))
         delta = 1.0 - keep
-        with np.errstate(divide="ignore"):
-            logkeep = np.log(np.maximum(keep, 0.0))
-        log_carry = np.concatenate([[0.0], np.cumsum(logkeep)[:-1]])
-        log_carry = np.maximum(log_carry, -np.inf)
-        yield_flow = 0.0
     else:
-        log_carry = np.zeros(steps + 1)
         yield_flow = math.expm1(q * dt) if q else 0.0
         for year in range(1, int(math.floor(horizon + 1e-9)) + 1):
-            fixed_at[int(round(year / dt))] = True
+            fixed_weight[int(round(year / dt))] += 1.0
+    with np.errstate(divide="ignore"):
+        logkeep = np.log(np.maximum(1.0 - delta, 0.0))
+    log_carry = np.concatenate([[0.0], np.cumsum(logkeep)[:-1]])
     return Grid(steps=steps, step_years=dt, horizon=horizon, up=up, down=down, probability=p,
                 real_probability=p_real, discount=1.0 / g, log_v0=math.log(res.present_value),
-                log_carry=log_carry, delta=delta, yield_flow=yield_flow, fixed_at=fixed_at,
-                fixed_beyond=fixed_beyond, warnings=tuple(warnings))
+                log_carry=log_carry, delta=delta, yield_flow=yield_flow,
+                fixed_weight=fixed_weight, fixed_beyond=fixed_beyond, warnings=tuple(warnings))
+
+
+def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, horizon: float):
+    """``flow_timing: spread``: at step i the asset pays what accrued over (t_{i-1}, t_i]
+    (compounded to t_i at the discount intensity), so that value before the payment = payment +
+    value after it, exactly; the terminal value is paid at the last date's step. Returns the
+    payout fractions, the fixed-flow weights (years of fixed flow accrued per step, compounded
+    at the risk-free rate) and the value at the horizon of 1 a year of fixed flow after it."""
+    times = np.arange(steps + 1) * dt
+    pieces = np.zeros(steps + 1)
+    pieces[1:] = res.accrued(times[:-1], times[1:])
+    tv_step = int(round(res.last_flow_year / dt))
+    tv_date = tv_step * dt
+    after = res._value_after(times, res.intensity, tv_date)
+    if tv_step <= steps:
+        pieces[tv_step] += res.terminal_value
+    before = pieces + after
+    if np.any(before[1:] <= 0) or not after[0] > 0:
+        k = int(np.argmax(before[1:] <= 0)) + 1
+        raise ValuationError(
+            f"The expected cash flows from year {times[k]:.4g} on are worth {before[k]:,.4g} "
+            "at that date (at the discount rate); the lattice of project value needs this "
+            "remaining value to be positive. Fix: check the signs of the later cash flows, add a "
+            "terminal_value, or model the loss-making tail as a right.")
+    delta = np.where(before > 0, pieces / np.where(before > 0, before, 1.0), 0.0)
+    delta[0] = 0.0
+    rf = intensity(market.risk_free_rate, market.compounding)
+    fixed = (res.period_start, res.last_flow_year)
+    unit = ResolvedUnderlying(present_value=1.0, flow_times=(fixed[1],),
+                              cash_flows=(fixed[1] - fixed[0],), payout=(), payout_yield=0.0,
+                              volatility=None, volatility_stderr=None, volatility_method="",
+                              last_flow_year=fixed[1], timing="spread",
+                              period_start=fixed[0], intensity=rf)
+    weight = np.zeros(steps + 1)
+    weight[1:] = unit.accrued(times[:-1], times[1:])
+    beyond = float(unit.value_after(horizon)) if fixed[1] > horizon else 0.0
+    return delta, weight, beyond
 
 
 def exercise_steps(grid: Grid, right) -> np.ndarray:
@@ -327,8 +365,8 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
             else:
                 flow *= share
                 H += scales * flow[None, :]
-        if has_fixed and grid.fixed_at[i]:
-            H += fixed
+        if has_fixed and grid.fixed_weight[i]:
+            H += fixed * grid.fixed_weight[i]
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]

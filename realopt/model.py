@@ -21,6 +21,7 @@ import numpy as np
 
 COMPOUNDING = ("annual", "continuous")
 EXERCISE = ("american", "european", "bermudan")
+FLOW_TIMING = ("at_dates", "spread")
 
 
 def growth_factor(rate: float, years, compounding: str):
@@ -160,6 +161,7 @@ class Underlying:
     volatility: float | None = None
     volatility_estimate: VolatilityEstimate | None = None
     drivers: DriverModel | None = None
+    flow_timing: str = "at_dates"    # "at_dates" | "spread" (see realopt.underlying)
 
 
 @dataclass(frozen=True)

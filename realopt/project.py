@@ -52,7 +52,7 @@ _MOVE = re.compile(r"^\s*(.+?)\s*->\s*(.+?)\s*$")
 TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights")
 PROJECT_KEYS = ("name", "currency", "unit")
 MARKET_KEYS = ("risk_free_rate", "compounding", "discount_rate")
-CASH_FLOW_KEYS = ("cash_flows", "terminal_value")
+CASH_FLOW_KEYS = ("cash_flows", "terminal_value", "flow_timing")
 PV_KEYS = ("present_value", "payout_yield")
 DRIVER_FORM_KEYS = ("years", "drivers", "correlation", "cash_flow", "tax_rate")
 UNDERLYING_KEYS = CASH_FLOW_KEYS + PV_KEYS + DRIVER_FORM_KEYS + ("volatility",)
@@ -900,6 +900,11 @@ class _Builder:
             out["terminal_value"] = self.number(
                 path + ("terminal_value",), d["terminal_value"],
                 "the value at the last cash-flow year of the flows beyond it (a number)")
+        if d.get("flow_timing") is not None and "flow_timing" in allowed:
+            out["flow_timing"] = self.choice(
+                path + ("flow_timing",), d["flow_timing"], model.FLOW_TIMING,
+                "when the yearly cash flows are received (at_dates: each at its date; spread: "
+                "evenly over the period before it)")
         vol_path = path + ("volatility",)
         explicit = lattice is not None and lattice.explicit
         if "volatility" not in d or d["volatility"] is None:
@@ -1649,6 +1654,9 @@ _FORM_HINTS = {
     "payout_yield": "payout_yield goes with present_value; with cash_flows the payout is the "
                     "cash flows themselves; delete it",
     "terminal_value": "terminal_value goes with cash_flows (or drivers); delete it",
+    "flow_timing": "flow_timing goes with cash_flows (the drivers form pays each year's flow at "
+                   "its date, as its volatility estimate assumes; with present_value the payout "
+                   "is the continuous payout_yield); delete it",
     "cash_flow": "cash_flow (singular) is the formula of the drivers form; for flows by year "
                  "use cash_flows",
     "present_value": "present_value is another way of giving the value; keep one",

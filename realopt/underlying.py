@@ -7,10 +7,16 @@ The lattice treats the base project value V as a traded-asset equivalent that pa
 cash-flow date t_k, the fraction ``delta_k = CF_k / W_k`` of its value just before the flow, where
 ``W_k`` is the value at t_k of the flows from t_k on (proportional payout keeps the tree
 recombining). In the ``present_value`` form the asset pays a continuous yield instead.
+
+``flow_timing: spread``: each year's flow accrues at a constant rate over the period before its
+date (from the previous date; the first over one spacing before it), so V0 is the value of those
+streams at the discount intensity (ln(1 + k) for annual compounding) and the lattice pays, at each
+step, what accrued since the previous step (see ``ResolvedUnderlying.accrued``).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from dataclasses import dataclass, replace
 from functools import lru_cache
 
 import numpy as np
@@ -32,10 +38,70 @@ class ResolvedUnderlying:
     volatility_stderr: float | None
     volatility_method: str
     last_flow_year: float | None        # None for the present_value form
+    timing: str = "at_dates"            # "at_dates" | "spread"
+    period_start: float = 0.0           # start of the first flow's accrual period (years)
+    terminal_value: float = 0.0
+    intensity: float = 0.0              # continuous discount intensity of discount_rate
 
     @property
     def has_flows(self) -> bool:
         return bool(self.flow_times)
+
+    def periods(self):
+        """(start, end, amount) of each flow's accrual period: from the previous date (the first
+        from ``period_start``) to its date."""
+        starts = (self.period_start,) + self.flow_times[:-1]
+        amounts = list(self.cash_flows)
+        amounts[-1] -= self.terminal_value
+        return list(zip(starts, self.flow_times, amounts))
+
+    def value_after(self, t):
+        """``spread`` form: value at t (array, years) of the flows after t, at the discount rate,
+        with the terminal value paid at ``tv_date``. Each flow accrues at a constant rate over
+        its period."""
+        return self._value_after(np.asarray(t, float), self.intensity, self.last_flow_year)
+
+    def _value_after(self, t, rho, tv_date):
+        out = np.where(t < tv_date - 1e-12, self.terminal_value * np.exp(-rho * (tv_date - t)),
+                       0.0)
+        for a, b, amount in self.periods():
+            c = amount / (b - a)
+            x = np.maximum(a, t)
+            out = out + np.where(b > x, c * np.exp(-rho * (x - t)) * _integral(-rho, b - x), 0.0)
+        return out
+
+    def accrued(self, t0, t1, rho=None):
+        """``spread`` form: value at t1 of the flows accruing over (t0, t1] (arrays, years),
+        compounded to t1 at the discount intensity (or ``rho``)."""
+        rho = self.intensity if rho is None else rho
+        t0, t1 = np.asarray(t0, float), np.asarray(t1, float)
+        out = np.zeros(np.broadcast(t0, t1).shape)
+        for a, b, amount in self.periods():
+            c = amount / (b - a)
+            lo, hi = np.maximum(a, t0), np.minimum(b, t1)
+            out = out + np.where(hi > lo, c * np.exp(rho * (t1 - hi)) * _integral(
+                rho, np.maximum(hi - lo, 0.0)), 0.0)
+        return out
+
+
+def _integral(rho: float, length):
+    """Integral of exp(rho s) for s in [0, length] (length array; rho may be 0)."""
+    length = np.asarray(length, float)
+    if rho == 0.0:
+        return length
+    return np.expm1(rho * length) / rho
+
+
+def intensity(rate: float, compounding: str) -> float:
+    """Continuous yearly intensity equivalent to ``rate`` under ``compounding``."""
+    return math.log1p(rate) if compounding == "annual" else rate
+
+
+def accrual_start(times) -> float:
+    """Start of the first flow's accrual period: one spacing before it (a year for a single
+    flow), not before today."""
+    spacing = times[1] - times[0] if len(times) > 1 else 1.0
+    return max(0.0, times[0] - spacing)
 
 
 def payout_schedule(flows, terminal_value: float, market: Market):
@@ -93,10 +159,20 @@ def _resolve(underlying: Underlying, market: Market) -> ResolvedUnderlying:
     if not flows:
         raise ValuationError("The project has no cash flows and no present_value to value.")
     v0, times, cfs, delta = payout_schedule(flows, float(underlying.terminal_value), market)
-    return ResolvedUnderlying(
+    res = ResolvedUnderlying(
         present_value=v0, flow_times=tuple(times.tolist()), cash_flows=tuple(cfs.tolist()),
         payout=tuple(delta.tolist()), payout_yield=0.0, volatility=vol,
-        volatility_stderr=stderr, volatility_method=method, last_flow_year=float(times[-1]))
+        volatility_stderr=stderr, volatility_method=method, last_flow_year=float(times[-1]),
+        timing=underlying.flow_timing, period_start=accrual_start(times),
+        terminal_value=float(underlying.terminal_value),
+        intensity=intensity(market.discount_rate, market.compounding))
+    if res.timing == "spread":
+        v0 = float(res.value_after(0.0))
+        if not v0 > 0:
+            raise ValuationError(f"The expected cash flows are worth {v0:,.4g} today; the lattice "
+                                 "of project value needs a positive value.")
+        res = replace(res, present_value=v0, payout=())
+    return res
 
 
 def resolve(project: Project) -> ResolvedUnderlying:

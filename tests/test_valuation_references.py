@@ -202,3 +202,53 @@ def test_probability_outside_unit_interval_is_refused():
         realopt.appraise(proj)
     msg = str(err.value)
     assert "g = 1.25" in msg and "u = 1.2" in msg and "d = 0.9" in msg and "Fix" in msg
+
+
+# --- flow_timing: spread (flows accrue evenly over the period before their date) -------------
+def _spread_project(right=None, spy=12, compounding="annual"):
+    flows = tuple((float(y), 5.0 + y) for y in range(1, 9))
+    return Project(
+        name="spread", market=Market(0.03, 0.095, compounding),
+        underlying=Underlying(cash_flows=flows, terminal_value=30.0, volatility=0.3,
+                              flow_timing="spread"),
+        investment=Investment(((0.0, 50.0),)), rights=(right,) if right else (),
+        lattice=LatticeSpec(steps_per_year=spy))
+
+
+def test_spread_present_value_is_the_limit_of_numpy_financial_sub_period_npv():
+    # Source: numpy-financial npv on m equal sub-period flows per year at the equivalent
+    # sub-period rate; as m grows it tends to the continuous-accrual value we compute in closed
+    # form (the gap shrinks like 1/m).
+    npf = pytest.importorskip("numpy_financial")
+    v0 = realopt.appraise(_spread_project(abandon(t=4.0, salvage=10.0))).present_value
+    gaps = []
+    for m in (12, 1200):
+        vals = [0.0]
+        for y in range(1, 9):
+            vals += [(5.0 + y) / m] * m
+        vals[-1] += 30.0
+        gaps.append(abs(npf.npv(1.095 ** (1.0 / m) - 1.0, vals) / v0 - 1.0))
+    assert gaps[1] < 1e-4 and gaps[1] < gaps[0] / 50
+
+
+def test_spread_european_abandonment_is_bsm_put_on_remaining_value():
+    # Black-Scholes-Merton closed form: with the accrued flows paid out step by step, V after
+    # year 3 is lognormal with today's value of the flows after year 3 as its spot (no yield).
+    right = realopt.model.Abandon(name="sell", window=(0.0, 3.0), exercise="european",
+                                  salvage=Schedule.constant(45.0))
+    p = _spread_project(right, spy=600, compounding="continuous")
+    a = realopt.appraise(p)
+    from realopt.underlying import resolve
+    res = resolve(p)
+    s0 = float(res.value_after(3.0)) * math.exp(-0.095 * 3.0)
+    ref = bsm("put", s0, 45.0, 0.03, 0.0, 0.3, 3.0)
+    assert a.flexibility_value == pytest.approx(ref, rel=1e-3)
+
+
+def test_spread_lattice_without_rights_returns_present_value():
+    # The payouts keep the tree a martingale at the risk-free rate (common practice for a
+    # payout-protected asset): a right that is never used leaves exactly the static NPV.
+    p = _spread_project(realopt.model.Abandon(name="never", window=(0.0, 5.0),
+                                              salvage=Schedule.constant(0.0)), spy=24)
+    a = realopt.appraise(p)
+    assert a.expanded_npv == pytest.approx(a.static_npv, abs=1e-9)
