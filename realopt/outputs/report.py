@@ -51,12 +51,32 @@ class Built:
     """The report's content, rendered once and shared by every format."""
 
     appraisal: object
-    sensitivity: object
+    drawer: object                                     # sensitivity and each figure's pixels
     fmt: Fmt
-    charts: list
-    pngs: dict = field(default_factory=dict)          # slug -> PNG bytes
-    pixels: dict = field(default_factory=dict)        # slug -> RGB array at PDF_DPI
+    charts: list                                       # those known so far, in reading order
     pdf_pages: list = field(default_factory=list)      # page headings, in order
+    complete: bool = False                              # charts include the sensitivity ones
+
+    def sens(self):
+        """The sensitivity analysis (waited for on first use), and with it the full list of
+        figures, the tornado and convergence ones included."""
+        from . import figures
+
+        s = self.drawer.sensitivity()
+        if not self.complete:
+            self.charts = figures.charts(self.appraisal, s)
+            self.drawer.submit(self.charts, s)
+            self.complete = True
+        return s
+
+    def chart(self, slug: str):
+        return next(c for c in self.charts if c.slug == slug)
+
+    def png(self, slug: str) -> bytes:
+        return self.drawer.get(slug)[0]
+
+    def pixels(self, slug: str):
+        return self.drawer.get(slug)[1]
 
 
 # ------------------------------------------------------------------------ folder safety
@@ -101,7 +121,6 @@ def write_report(appraisal, out_dir, *, source=None, moves: Moves = DEFAULT_MOVE
     created = []
     tmp = None
     try:
-        s = analyse(appraisal, moves)
         for parent in reversed(final.parents):
             if not parent.exists():
                 parent.mkdir()
@@ -110,7 +129,7 @@ def write_report(appraisal, out_dir, *, source=None, moves: Moves = DEFAULT_MOVE
         umask = os.umask(0)
         os.umask(umask)
         tmp.chmod(0o777 & ~umask)                  # mkdtemp makes it private; a report is not
-        _write_all(appraisal, s, tmp, dpi, xlsx, source)
+        _write_all(appraisal, moves, tmp, dpi, xlsx, source)
         _swap(tmp, final)
         tmp = None
     except ReportError:
@@ -156,16 +175,17 @@ def _swap(tmp: Path, final: Path) -> None:
 
 
 # ------------------------------------------------------------------------ writing
-def _write_all(a, s, tmp: Path, dpi: int, xlsx, source) -> None:
+def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source) -> None:
     from . import figures
 
     f = Fmt(a.project)
-    b = Built(appraisal=a, sensitivity=s, fmt=f, charts=figures.charts(a, s))
-    (tmp / "figures").mkdir()
-    for chart, (png, pixels) in zip(b.charts, render_all(b.charts, dpi)):
-        b.pngs[chart.slug] = png
-        b.pixels[chart.slug] = pixels
-        (tmp / "figures" / f"{chart.slug}.png").write_bytes(png)
+    with _Drawer(a, moves, dpi) as drawer:
+        b = Built(appraisal=a, drawer=drawer, fmt=f, charts=list(drawer.base))
+        write_pdf(b, tmp / "report.pdf")           # takes each figure as it is drawn
+        s = b.sens()
+        (tmp / "figures").mkdir()
+        for chart in b.charts:
+            (tmp / "figures" / f"{chart.slug}.png").write_bytes(b.png(chart.slug))
     tables = csv_tables(a, s, f)
     (tmp / "tables").mkdir()
     for stem, df in tables.items():
@@ -187,7 +207,6 @@ def _write_all(a, s, tmp: Path, dpi: int, xlsx, source) -> None:
     (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
     (tmp / "report.html").write_text(render_html(b), encoding="utf-8")
     (tmp / "report.md").write_text(render_markdown(b), encoding="utf-8")
-    write_pdf(b, tmp / "report.pdf")
     manifest = {"realopt": __version__, "project": a.project.name,
                 "source": None if source is None else str(source),
                 "figures": [c.slug + ".png" for c in b.charts],
@@ -196,41 +215,127 @@ def _write_all(a, s, tmp: Path, dpi: int, xlsx, source) -> None:
     (tmp / MARKER).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
 
 
+_JOB = None             # (appraisal, moves, dpi) for forked workers (see _Drawer)
 _CHARTS = None          # the charts being drawn, for forked workers (see render_all)
 
 
-def _render_one(args):
+def _render_one(k):
     from . import figures
 
-    k, dpi = args
-    return figures.render(_CHARTS[k], dpi=dpi, page_dpi=PDF_DPI)
+    chart, dpi = _CHARTS[k]
+    return figures.render(chart, dpi=dpi, page_dpi=PDF_DPI)
 
 
 def render_all(charts, dpi: int) -> list[tuple]:
-    """(PNG bytes, RGB pixels at PDF_DPI) of every chart. Drawing dominates the report's time
-    and each figure is independent, so where the platform forks (Linux) and has several
-    cores, figures are drawn in worker processes that inherit the charts; otherwise one after
-    the other."""
+    """(PNG bytes, RGB pixels at PDF_DPI) of each chart, in forked workers where possible."""
     global _CHARTS
     from . import figures
 
-    workers = min(len(charts), os.cpu_count() or 1, 4)
-    if workers > 1 and len(charts) > 2:
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
+    ctx = _fork_context()
+    if ctx is None or len(charts) < 3:
+        return [figures.render(c, dpi=dpi, page_dpi=PDF_DPI) for c in charts]
+    from concurrent.futures import ProcessPoolExecutor
 
-        try:
-            ctx = multiprocessing.get_context("fork")
-        except ValueError:
-            ctx = None
+    _CHARTS = [(c, dpi) for c in charts]
+    try:
+        with ProcessPoolExecutor(max_workers=min(4, os.cpu_count() or 1), mp_context=ctx) as pool:
+            return list(pool.map(_render_one, range(len(charts))))
+    finally:
+        _CHARTS = None
+
+
+def _job_sensitivity():
+    a, moves, _ = _JOB
+    return analyse(a, moves)
+
+
+def _job_chart(slug, s):
+    from . import figures
+
+    a, _, dpi = _JOB
+    chart = next(c for c in figures.charts(a, s) if c.slug == slug)
+    return figures.render(chart, dpi=dpi, page_dpi=PDF_DPI)
+
+
+def _fork_context():
+    if (os.cpu_count() or 1) < 2:
+        return None
+    import multiprocessing
+
+    try:
+        return multiprocessing.get_context("fork")
+    except ValueError:
+        return None
+
+
+class _Drawer:
+    """Runs the sensitivity analysis and draws the figures. Where the platform forks and has
+    several cores, both go to worker processes that inherit the appraisal (in reading order),
+    while this process writes the PDF as they arrive; otherwise everything runs here, one
+    after the other. Results are the same either way."""
+
+    def __init__(self, a, moves, dpi: int):
+        self.a, self.moves, self.dpi = a, moves, dpi
+        self.done: dict = {}
+        self.futures: dict = {}
+        self.charts: dict = {}
+        self.pool = None
+        self.base: list = []
+        self._s = None
+
+    def __enter__(self):
+        global _JOB
+        from . import figures
+
+        base = self.base = figures.charts(self.a, None)
+        self.charts = {c.slug: c for c in base}
+        ctx = _fork_context()
         if ctx is not None:
-            _CHARTS = charts
-            try:
-                with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
-                    return list(pool.map(_render_one, [(k, dpi) for k in range(len(charts))]))
-            finally:
-                _CHARTS = None
-    return [figures.render(c, dpi=dpi, page_dpi=PDF_DPI) for c in charts]
+            from concurrent.futures import ProcessPoolExecutor
+
+            _JOB = (self.a, self.moves, self.dpi)
+            self.pool = ProcessPoolExecutor(max_workers=min(4, os.cpu_count() or 1),
+                                            mp_context=ctx)
+            self.futures[base[0].slug] = self.pool.submit(_job_chart, base[0].slug, None)
+            self._s = self.pool.submit(_job_sensitivity)
+            for c in base[1:]:
+                self.futures[c.slug] = self.pool.submit(_job_chart, c.slug, None)
+        return self
+
+    def __exit__(self, *exc):
+        global _JOB
+        if self.pool is not None:
+            self.pool.shutdown(wait=True, cancel_futures=True)
+            self.pool = None
+        _JOB = None
+        return False
+
+    def sensitivity(self):
+        """The Sensitivity of the appraisal (from a worker, or computed here)."""
+        if self._s is None:
+            self._s = analyse(self.a, self.moves)
+        elif hasattr(self._s, "result"):
+            self._s = self._s.result()
+        return self._s
+
+    def submit(self, charts, s) -> None:
+        for c in charts:
+            if c.slug in self.charts or c.slug in self.futures:
+                continue
+            self.charts[c.slug] = c
+            if self.pool is not None:
+                self.futures[c.slug] = self.pool.submit(_job_chart, c.slug, s)
+
+    def get(self, slug):
+        """(PNG bytes, RGB pixels at PDF_DPI) of the figure ``slug``."""
+        from . import figures
+
+        if slug not in self.done:
+            fut = self.futures.pop(slug, None)
+            self.done[slug] = (fut.result() if fut is not None else
+                               figures.render(self.charts[slug], dpi=self.dpi,
+                                              page_dpi=PDF_DPI))
+        return self.done[slug]
 
 
 # ------------------------------------------------------------------------ shared content
@@ -327,8 +432,8 @@ def _html_table(headers, rows, num_cols=(), row_classes=None) -> str:
 
 
 def _figure_html(b: Built, slug: str) -> str:
-    chart = next(c for c in b.charts if c.slug == slug)
-    data = base64.b64encode(b.pngs[slug]).decode("ascii")
+    chart = b.chart(slug)
+    data = base64.b64encode(b.png(slug)).decode("ascii")
     return (f'<figure id="fig-{_e(slug)}"><img alt="{_e(chart.title)}" '
             f'src="data:image/png;base64,{data}"><figcaption><b>{_e(chart.title)}.</b> '
             f"{_e(chart.caption)}</figcaption></figure>")
@@ -338,7 +443,7 @@ def _sections(b: Built):
     """The report's sections as (heading, list of blocks); a block is a tuple naming its kind:
     ('p', text), ('decision', text), ('caution', text), ('table', headers, rows, num_cols,
     total_rows), ('card', right), ('figure', slug), ('list', items), ('note', text)."""
-    a, s, f = b.appraisal, b.sensitivity, b.fmt
+    a, f = b.appraisal, b.fmt
     slugs = [c.slug for c in b.charts]
     money = f.unit_label
     rows, totals = [], []
@@ -381,6 +486,10 @@ def _sections(b: Built):
     when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use") if x in slugs]
     out.append(("When to use each right", when))
     out.append(("Uncertainty in project value", [("figure", "value_fan")]))
+    yield from out
+    out = []
+    s = b.sens()                     # the first sections are written before it is needed
+    slugs = [c.slug for c in b.charts]
     sens = []
     if "sensitivity" in slugs:
         sens.append(("figure", "sensitivity"))
@@ -415,7 +524,7 @@ def _sections(b: Built):
     out.append(("Warnings", [("list", list(a.warnings))] if a.warnings
                 else [("p", "None.")]))
     out.append(("Caution", [("caution", CAUTION), ("note", _files_text())]))
-    return out
+    yield from out
 
 
 def render_html(b: Built) -> str:
@@ -506,7 +615,7 @@ def render_markdown(b: Built) -> str:
             elif kind == "list":
                 out += [f"- {x}" for x in blk[1]] + [""]
             elif kind == "figure":
-                chart = next(c for c in b.charts if c.slug == blk[1])
+                chart = b.chart(blk[1])
                 out += [f"![{chart.title}](figures/{chart.slug}.png)", "",
                         f"*{chart.title}.* {chart.caption}", ""]
             elif kind == "table":
@@ -579,7 +688,7 @@ class _Pages:
 
     def _figure_size(self, chart):
         """(width, height) in inches of the figure on the page, and its caption lines."""
-        hpx, wpx = self.b.pixels[chart.slug].shape[:2]
+        hpx, wpx = self.b.pixels(chart.slug).shape[:2]
         w = A4[0] - 2 * MARGIN
         h = w * hpx / wpx
         h_max = A4[1] - 2 * MARGIN - 1.4
@@ -593,7 +702,7 @@ class _Pages:
 
     def figure(self, chart):
         """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it."""
-        img = self.b.pixels[chart.slug]
+        img = self.b.pixels(chart.slug)
         w, h, caption = self._figure_size(chart)
         if self.fig is None or self.y - self.figure_need(chart) < MARGIN + 0.3:
             self._new(chart.title)
@@ -616,42 +725,88 @@ class _Pages:
         self.gap(0.06)
 
     def table(self, headers, rows, widths, num_cols=()):
-        """Rows of cells (text, or (value, text) for numbers); widths in inches."""
+        """Rows of cells (text, or (value, text) for numbers); widths in inches. Each column
+        of a page is one text object (rows padded to a common height, thin rules between
+        them): far fewer objects than one per cell, which is what a PDF page costs to draw."""
+        from matplotlib.lines import Line2D
+
         xs = [MARGIN]
         for w in widths[:-1]:
             xs.append(xs[-1] + w)
         size = 7.8
-        h = LINE * size / 8.5
+        h = _line_pitch(self.fig, size)
+        gap = h * 0.35
 
-        def cells(row):
+        def cells(row, bold=False):
             out = []
             for k, c in enumerate(row):
                 t = c[1] if isinstance(c, tuple) else str(c)
-                chars = max(8, int(widths[k] * 72 / (size * 0.56)))
+                chars = max(8, int(widths[k] * 72 / (size * (0.64 if bold else 0.56))))
                 out.append(textwrap.wrap(t, chars) or [""])
             return out
 
-        def draw(row, weight="normal", header=False):
-            cs = cells(row)
-            n = max(len(c) for c in cs)
-            page = self.fig
-            self.need(n * h + 0.04, self.b.pdf_pages[-1])
-            if self.fig is not page and not header and any(headers):
-                draw(headers, "bold", header=True)        # the header again on a new page
-            for k, lines in enumerate(cs):
+        def flush(chunk, weight):
+            """Draw rows [(cells, n lines)] from self.y down; returns the height used."""
+            if not chunk:
+                return 0.0
+            top = self.y
+            for k in range(len(widths)):
+                lines = []
+                for cs, n in chunk:
+                    lines += cs[k] + [""] * (n - len(cs[k]))
+                    lines.append("")                            # the gap between rows
                 right = k in num_cols
                 x = xs[k] + widths[k] - 0.05 if right else xs[k]
-                self.fig.text(x / A4[0], self.y / A4[1], "\n".join(lines), fontsize=size,
+                self.fig.text(x / A4[0], top / A4[1], "\n".join(lines[:-1]), fontsize=size,
                               fontweight=weight, ha="right" if right else "left", va="top",
                               color="#222222", linespacing=SPACING,
                               multialignment="right" if right else "left")
-            self.y -= n * h + 0.04
+            y = top
+            for cs, n in chunk[:-1]:
+                y -= (n + 1) * h
+                yy = (y + h * 0.55) / A4[1]
+                self.fig.add_artist(Line2D([MARGIN / A4[0], 1 - MARGIN / A4[0]], [yy, yy],
+                                           lw=0.3, color="#dddddd"))
+            used = sum((n + 1) * h for _, n in chunk) - h
+            self.y -= used + gap
+            return used
 
-        if any(headers):
-            draw(headers, "bold", header=True)
+        head = cells(headers, bold=True) if any(headers) else None
+        head_n = max(len(c) for c in head) if head else 0
+        chunk = []
+        started = False
         for row in rows:
-            draw(row)
+            cs = cells(row)
+            n = max(len(c) for c in cs)
+            need = sum((m + 1) * h for _, m in chunk) + (n + 1) * h
+            if not started or self.y - need - (head_n + 1) * h < MARGIN + 0.3:
+                flush(chunk, "normal")
+                chunk = []
+                self.need((n + 1 + head_n + 1) * h, self.b.pdf_pages[-1])
+                if head:
+                    flush([(head, head_n)], "bold")
+                started = True
+            chunk.append((cs, n))
+        flush(chunk, "normal")
         self.gap()
+
+
+_PITCH: dict = {}
+
+
+def _line_pitch(fig, size: float) -> float:
+    """Inches from one line to the next of a multi-line text at ``size`` points (measured
+    once with the figure's renderer, so table rules stay between the rows)."""
+    if size not in _PITCH:
+        r = fig.canvas.get_renderer()
+        one = fig.text(0, 0, "Xg", fontsize=size, linespacing=SPACING)
+        many = fig.text(0, 0, "\n".join(["Xg"] * 21), fontsize=size, linespacing=SPACING)
+        dpi = fig.dpi
+        _PITCH[size] = (many.get_window_extent(r).height - one.get_window_extent(r).height) \
+            / 20 / dpi
+        one.remove()
+        many.remove()
+    return _PITCH[size]
 
 
 def write_pdf(b: Built, path: Path) -> None:
@@ -681,13 +836,13 @@ def write_pdf(b: Built, path: Path) -> None:
         pg.text(MARGIN, CAUTION, size=8.5)
         for heading, blocks in _sections(b):
             first = blocks[0] if blocks else None
-            keep = (pg.figure_need(next(c for c in b.charts if c.slug == first[1]))
+            keep = (pg.figure_need(b.chart(first[1]))
                     if first and first[0] == "figure" else 0.9)
             pg.heading(heading, new_page=heading in ("Decision rule card",
                                                      "Inputs and assumptions"), keep=keep)
             for blk in blocks:
                 if blk[0] == "figure":
-                    pg.figure(next(c for c in b.charts if c.slug == blk[1]))
+                    pg.figure(b.chart(blk[1]))
                 else:
                     _pdf_block(pg, blk, f, full)
         pg.close()
