@@ -84,8 +84,11 @@ def _map_style(styles, dm, k):
 
 
 def _flow_years(project) -> list[float]:
-    """Cash-flow dates of the project (where project value drops by the year's flow)."""
+    """Cash-flow dates of the project where project value drops by a whole year's flow (none
+    when the flows accrue through the year, ``flow_timing: spread``)."""
     u = project.underlying
+    if getattr(u, "flow_timing", "at_dates") == "spread":
+        return []
     if u.cash_flows:
         return [float(y) for y, _ in u.cash_flows]
     if u.drivers is not None:
@@ -566,8 +569,10 @@ def charts(a, s) -> list[Chart]:
     out.append(Chart(
         "value_fan", "Project value fan (real-world)",
         "Percentile bands of project value over time under the real-world drift, from today's "
-        f"{money(a.present_value)}; values fall at each cash-flow date as the year's flow is "
-        "paid out.", 3.3, lambda fig: _draw_fan(fig, a, f)))
+        f"{money(a.present_value)}; " + (
+            "values fall at each cash-flow date as the year's flow is paid out." if flows else
+            "values fall over time as the project pays out its cash flows."),
+        3.3, lambda fig: _draw_fan(fig, a, f)))
     if s is None:                  # the figures that do not need the sensitivity runs
         out.append(_states_chart(a, f))
         return out

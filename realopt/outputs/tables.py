@@ -181,6 +181,10 @@ def inputs_rows(project, f: Fmt) -> list[tuple[str, str, str]]:
         if u.terminal_value:
             rows.append(("Underlying", "Terminal value (at the last year)",
                          f.money(u.terminal_value)))
+        rows.append(("Underlying", "Cash-flow timing",
+                     "each year's flow accrues evenly through that year"
+                     if getattr(u, "flow_timing", "at_dates") == "spread"
+                     else "each year's flow is paid at its date"))
     elif u.drivers is not None:
         d = u.drivers
         rows.append(("Underlying", "Cash-flow years", f"{d.years[0]} to {d.years[1]}"))
