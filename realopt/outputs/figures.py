@@ -16,12 +16,12 @@ from typing import Callable
 import numpy as np
 
 from . import style
+from .sensitivity import SETTLED
 from .tables import Fmt, breakeven_text
 
 # matplotlib is imported through .style (Agg) and only inside this module's functions below.
 
 
-SETTLED = 0.005        # convergence figure: the band drawn around the finest grid's value
 PNG_COMPRESSION = 1    # zlib level: half the encoding time of the default 6, files ~20% larger
 
 
@@ -43,7 +43,8 @@ def _log_axis(ax, lo, hi):
 
     ax.set_yscale("log")
     ax.set_ylim(lo, hi)
-    ax.yaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    subs = (1.0, 2.0, 5.0) if hi / lo > 30 else (1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0)
+    ax.yaxis.set_major_locator(LogLocator(base=10, subs=subs))
     ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.4g}"))
     ax.yaxis.set_minor_formatter(NullFormatter())
 
@@ -589,7 +590,11 @@ def charts(a, s) -> list[Chart]:
         out.append(Chart(
             "convergence", "Convergence of the expanded NPV over the lattice grid",
             f"The chosen grid ({c.chosen} steps a year) gives {money(a.expanded_npv)}, within "
-            f"{gap} of the finest grid shown; a flat line means the grid has settled.",
+            f"{gap} of the finest grid shown; " + (
+                "it lies in the grey band, so the grid has settled." if c.settled else
+                "it lies outside the grey band, so the grid has not settled: use "
+                + (f"--steps-per-year {c.settled_at} or more" if c.settled_at else
+                   "more steps per year") + " for a number to quote."),
             2.8, lambda fig: _draw_convergence(fig, a, s, f)))
     out.append(_states_chart(a, f))
     return out

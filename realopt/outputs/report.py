@@ -508,6 +508,12 @@ def _sections(b: Built):
     out.append(("Sensitivity and break-evens", sens))
     lat = [("table", ["Lattice", ""], [(k, v) for k, v in lattice_rows(a, f)], (), None)]
     if "convergence" in slugs:
+        c = s.convergence
+        if not c.settled:
+            lat.append(("p", f"Grid not settled: the expanded NPV at {c.chosen} steps a year is "
+                             f"{f.pct(c.relative_gap, 2)} from the finest grid shown; use "
+                             + (f"--steps-per-year {c.settled_at} or more" if c.settled_at
+                                else "more steps per year") + " before quoting it."))
         lat.append(("figure", "convergence"))
     else:
         lat.append(("note", "No convergence figure: the tree's step is fixed by explicit "

@@ -37,6 +37,7 @@ SCAN_POINTS = 6
 BISECT_STEPS = 9
 MAX_CONVERGENCE_STEPS = 4800      # finest grid of the convergence figure (total steps)
 CONTRACT_CAP = 0.99               # a moved contraction keeps some of the project
+SETTLED = 0.005                   # a grid has settled within 0.5% of the finest grid's value
 
 
 @dataclass(frozen=True)
@@ -95,6 +96,12 @@ class Convergence:
     expanded_npv: tuple[float, ...]
     chosen: int
     relative_gap: float | None     # |chosen - finest| / |finest| (None if finest is 0)
+    settled_at: int | None = None  # fewest steps a year from which every grid shown is within
+    #                                SETTLED of the finest (None: only the finest itself)
+
+    @property
+    def settled(self) -> bool:
+        return self.settled_at is not None and self.chosen >= self.settled_at
 
 
 @dataclass(frozen=True)
@@ -338,7 +345,13 @@ def convergence(appraisal) -> Convergence | None:
             values.append(expanded_npv(replace(p, lattice=replace(p.lattice, steps_per_year=n))))
     finest = values[-1]
     gap = abs(appraisal.expanded_npv - finest) / abs(finest) if finest else None
-    return Convergence(tuple(grid), tuple(values), chosen, gap)
+    tol = SETTLED * abs(finest) if finest else 1e-12
+    settled_at = None
+    for k in range(len(grid) - 1):
+        if all(abs(v - finest) <= tol for v in values[k:-1]):
+            settled_at = grid[k]
+            break
+    return Convergence(tuple(grid), tuple(values), chosen, gap, settled_at)
 
 
 def analyse(appraisal, moves: Moves = DEFAULT_MOVES) -> Sensitivity:
