@@ -222,14 +222,17 @@ def expanded_npv(project: Project) -> float:
     return v.value([r.name for r in project.rights])
 
 
-def quick_appraisal(project: Project) -> tuple[float, float, str]:
-    """(static NPV, expanded NPV, decision today) from one recorded solve, nothing else: for
+def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, float, str | None]:
+    """(static NPV, expanded NPV, decision today) from one solve, nothing else: for
     sensitivities of the flexibility value and break-evens of the decision today. The numbers
-    and the decision text are those :func:`appraise` would give for the same project."""
+    and the decision text are those :func:`appraise` would give for the same project.
+    ``decision=False`` skips recording the policy (faster) and returns None for the decision."""
     v = _Valuer(project)
     graph = build_state_graph(v.rights)
-    sol = solve(v.grid, graph, record=True)
+    sol = solve(v.grid, graph, record=decision)
     full = v._npv(sol, graph)
+    if not decision:
+        return v.static_npv, full, None
     return v.static_npv, full, _decision_today(sol, graph, full, _money_format(project))
 
 
