@@ -34,7 +34,7 @@ from ..model import Abandon, Contract, Defer, Expand, Project, Schedule, Switch,
 VOL_RANGE = (0.02, 1.50)          # searched for the volatility break-even (yearly sigma)
 COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even (x today's cost)
 SCAN_POINTS = 6
-BISECT_STEPS = 9
+BISECT_STEPS = 8
 MAX_CONVERGENCE_STEPS = 4800      # finest grid of the convergence figure (total steps)
 CONTRACT_CAP = 0.99               # a moved contraction keeps some of the project
 SETTLED = 0.005                   # a grid has settled within 0.5% of the finest grid's value
@@ -211,10 +211,10 @@ def _pct(x: float) -> str:
     return f"{x * 100:.3g}%"
 
 
-def _quick(project: Project):
+def _quick(project: Project, decision: bool = True):
     from ..appraisal import quick_appraisal
 
-    return quick_appraisal(project)
+    return quick_appraisal(project, decision=decision)
 
 
 def tornado(appraisal, moves: Moves = DEFAULT_MOVES) -> tuple[list[TornadoRow], list[str]]:
@@ -250,8 +250,8 @@ def tornado(appraisal, moves: Moves = DEFAULT_MOVES) -> tuple[list[TornadoRow], 
     rows = []
     for label, lo_txt, hi_txt, p_lo, p_hi in cases:
         try:
-            s_lo, e_lo, _ = _quick(p_lo)
-            s_hi, e_hi, _ = _quick(p_hi)
+            s_lo, e_lo, _ = _quick(p_lo, decision=False)
+            s_hi, e_hi, _ = _quick(p_hi, decision=False)
         except RealoptError as err:
             notes.append(f"{label} is not moved: {err}")
             continue
