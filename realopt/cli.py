@@ -285,23 +285,25 @@ def _register_appraise(sub) -> None:
     p.set_defaults(run=run_appraise)
 
 
-def run_appraise(args) -> int:
+def appraise_from_args(args):
+    """Load ``args.file`` with the overrides, refuse a run beyond the machine (unless
+    --allow-large), and appraise it; valuation errors name the file."""
     from .appraisal import appraise
     from .lattice import plan as make_plan
 
     project = load_from_args(args, args.file)
-    if not args.allow_large:
-        try:
-            pl = make_plan(project)
-        except ValuationError as err:
-            raise ValuationError(f"{args.file}: {err}") from None
-        refusal = guard_message(project, pl)
-        if refusal:
-            raise ValuationError(f"{args.file}: {refusal}")
     try:
-        result = appraise(project)
+        if not args.allow_large:
+            refusal = guard_message(project, make_plan(project))
+            if refusal:
+                raise ValuationError(refusal)
+        return appraise(project)
     except ValuationError as err:
         raise ValuationError(f"{args.file}: {err}") from None
+
+
+def run_appraise(args) -> int:
+    result = appraise_from_args(args)
     if args.json:
         _out(to_json(result.to_dict()))
     else:

@@ -69,25 +69,11 @@ def register(sub) -> None:
 
 
 def run_report(args) -> int:
-    from ..appraisal import appraise
-    from ..cli import _out, guard_message, load_from_args
-    from ..errors import ValuationError
-    from ..lattice import plan as make_plan
+    from ..cli import _out, appraise_from_args
     from .report import write_report
     from .sensitivity import DEFAULT_MOVES
 
-    project = load_from_args(args, args.file)
-    if not args.allow_large:
-        try:
-            refusal = guard_message(project, make_plan(project))
-        except ValuationError as err:
-            raise ValuationError(f"{args.file}: {err}") from None
-        if refusal:
-            raise ValuationError(f"{args.file}: {refusal}")
-    try:
-        result = appraise(project)
-    except ValuationError as err:
-        raise ValuationError(f"{args.file}: {err}") from None
+    result = appraise_from_args(args)
     out = Path(args.output) if args.output else Path(f"{Path(args.file).stem}-report")
     write_report(result, out, source=args.file, moves=args.moves or DEFAULT_MOVES)
     _out(f"{args.file}: report written to {out}/ (report.html, report.pdf, report.md, "
