@@ -213,7 +213,8 @@ def test_demo_rights_cover_the_issue(demo_projects):
     assert {field.right(n).kind for r in phase2 for n in r.requires} <= {"defer", "expand"}
     for p in demo_projects:
         proj = load_project(p)
-        assert proj.horizon <= 12 and proj.lattice.steps_per_year <= 12, p.name
+        # modest trees keep `realopt appraise` on a demo well under 1.5 s
+        assert proj.horizon <= 12 and proj.horizon * proj.lattice.steps_per_year <= 600, p.name
         if p.stem in ("coating_line", "peaking_unit", "staged_field"):
             assert proj.warnings == (), (p.name, proj.warnings)
 
