@@ -876,7 +876,7 @@ class _Builder:
                      "did you mean cash_flows (with an s)?", at="key")
             return None
         allowed = {"cash_flows": CASH_FLOW_KEYS, "present_value": PV_KEYS,
-                   "drivers": DRIVER_FORM_KEYS + ("terminal_value",)}[form]
+                   "drivers": DRIVER_FORM_KEYS + ("terminal_value", "flow_timing")}[form]
         for k in d:
             if k in UNDERLYING_KEYS and k != "volatility" and k not in allowed:
                 self.bad(path + (k,), f"the key {k} next to {form}",
@@ -1654,9 +1654,8 @@ _FORM_HINTS = {
     "payout_yield": "payout_yield goes with present_value; with cash_flows the payout is the "
                     "cash flows themselves; delete it",
     "terminal_value": "terminal_value goes with cash_flows (or drivers); delete it",
-    "flow_timing": "flow_timing goes with cash_flows (the drivers form pays each year's flow at "
-                   "its date, as its volatility estimate assumes; with present_value the payout "
-                   "is the continuous payout_yield); delete it",
+    "flow_timing": "flow_timing goes with cash_flows or drivers; with present_value the payout "
+                   "is the continuous payout_yield; delete it",
     "cash_flow": "cash_flow (singular) is the formula of the drivers form; for flows by year "
                  "use cash_flows",
     "present_value": "present_value is another way of giving the value; keep one",

@@ -527,7 +527,23 @@ def test_flake_line_demo_loads_and_appraises(repo_root):
     assert model is not None and model.correlation == (("flake_price", "bale_cost", 0.7),)
     ours = simulate_underlying(model, project.underlying.volatility_estimate, project.market)
     out = realopt.appraise(project).to_dict()
-    assert out["present_value"] == pytest.approx(ours.present_value, rel=1e-9)
+    if project.underlying.flow_timing == "spread":
+        # the same expected flows, each accruing through its year (realopt.underlying): worth
+        # more than paid at year ends, by at most the accrual factor (e^rho - 1)/rho of a
+        # uniform stream over one year (closed form; the terminal value is not spread)
+        from realopt.model import Underlying
+        from realopt.underlying import resolve
+        from dataclasses import replace
+        spread = resolve(replace(project, underlying=Underlying(
+            cash_flows=ours.cash_flows, volatility=0.3, flow_timing="spread"))).present_value
+        assert out["present_value"] == pytest.approx(spread, rel=1e-9)
+        accrual = 0.09 / math.log1p(0.09)
+        assert ours.present_value < out["present_value"] <= ours.present_value * accrual * (
+            1 + 1e-12)
+        if project.underlying.terminal_value == 0:      # every flow spread: exactly the factor
+            assert out["present_value"] == pytest.approx(ours.present_value * accrual, rel=1e-12)
+    else:
+        assert out["present_value"] == pytest.approx(ours.present_value, rel=1e-9)
     assert out["volatility"] == pytest.approx(ours.volatility, rel=1e-12)
     assert out["volatility_stderr"] == pytest.approx(ours.volatility_stderr, rel=1e-12)
     assert out["volatility_method"] == ours.method and "seed 7" in ours.method
