@@ -97,6 +97,25 @@ def _flow_years(project) -> list[float]:
     return []
 
 
+def _threshold_lines(a, state=None):
+    """Each threshold line of the result, in the order of the rights: (label of the action,
+    'above'/'below', the (year, value) points, and the x/y arrays broken at cash-flow dates).
+    ``state``: only the thresholds read from that state (decision maps)."""
+    breaks = _flow_years(a.project)
+    for r in a.rights:
+        ts = [t for t in r.thresholds if not t.never and (state is None or t.state == state)]
+        for action in dict.fromkeys(t.action for t in ts):
+            tt = [t for t in ts if t.action == action]
+            for attr, word in (("lower", "above"), ("upper", "below")):
+                pts = [(t.year, getattr(t, attr)) for t in tt if getattr(t, attr) is not None]
+                if not pts:
+                    continue
+                xs, ys = _broken(*zip(*pts), breaks)
+                what = r.name if r.type != "switch" else f"{r.name}: {action}"
+                what = f"invest ({r.name})" if r.type == "defer" else what
+                yield what, word, pts, xs, ys
+
+
 def _broken(xs, ys, breaks):
     """xs, ys with NaN inserted where a cash-flow date falls in (x[k], x[k+1]]: the value the
     decisions look at drops there, so a threshold line is not joined across it."""
@@ -218,26 +237,13 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
     handles.append(Patch(facecolor="white", edgecolor=style.MUTED,
                          label=_wrap("no choice here (outside the rights' windows or the "
                                      "tree)", 34)))
-    breaks = _flow_years(a.project)
-    k_line = 0
-    for r in a.rights:
-        ts = [t for t in r.thresholds if t.state == dm.state and not t.never]
-        for action in dict.fromkeys(t.action for t in ts):
-            tt = [t for t in ts if t.action == action]
-            for attr, word in (("lower", "above"), ("upper", "below")):
-                pts = [(t.year, getattr(t, attr)) for t in tt if getattr(t, attr) is not None]
-                if not pts:
-                    continue
-                xs, ys = _broken(*zip(*pts), breaks)
-                what = r.name if r.type != "switch" else f"{r.name}: {action}"
-                what = f"invest ({r.name})" if r.type == "defer" else what
-                line, = ax.plot(xs, ys, color=style.INK, linewidth=1.1,
-                                linestyle=style.DASHES[(k_line + 1) % len(style.DASHES)],
-                                marker=style.MARKERS[k_line % len(style.MARKERS)],
-                                markevery=_isolated_mask(ys), markersize=3.5, zorder=4,
-                                label=_wrap(f"threshold: {what} (use if value is {word})", 36))
-                handles.append(line)
-                k_line += 1
+    for k_line, (what, word, pts, xs, ys) in enumerate(_threshold_lines(a, dm.state)):
+        line, = ax.plot(xs, ys, color=style.INK, linewidth=1.1,
+                        linestyle=style.DASHES[(k_line + 1) % len(style.DASHES)],
+                        marker=style.MARKERS[k_line % len(style.MARKERS)],
+                        markevery=_isolated_mask(ys), markersize=3.5, zorder=4,
+                        label=_wrap(f"threshold: {what} (use if value is {word})", 36))
+        handles.append(line)
     _today_marker(ax, a.present_value, f)
     cols = np.flatnonzero((dm.codes >= 0).any(axis=0))
     last = float(dm.times[cols[-1]]) if cols.size else float(dm.times[-1])
@@ -263,29 +269,16 @@ def _draw_thresholds(fig, a, f: Fmt):
                     zorder=1, label="middle half of project value (25-75%, real-world)")
     ax.plot(a.fan_years, a.expected_real_world, color=style.MUTED, linewidth=1.2, zorder=2,
             label="expected project value (real-world)")
-    k = 0
-    breaks = _flow_years(a.project)
     ys_all = [a.present_value, *a.fan[25], *a.fan[75]]
-    for r in a.rights:
-        ts = [t for t in r.thresholds if not t.never]
-        for action in dict.fromkeys(t.action for t in ts):
-            tt = [t for t in ts if t.action == action]
-            for attr, word in (("lower", "above"), ("upper", "below")):
-                pts = [(t.year, getattr(t, attr)) for t in tt if getattr(t, attr) is not None]
-                if not pts:
-                    continue
-                ys_all += [y for _, y in pts]
-                xs, ys = _broken(*zip(*pts), breaks)
-                what = r.name if r.type != "switch" else f"{r.name}: {action}"
-                what = f"invest ({r.name})" if r.type == "defer" else what
-                st = style.line_style(k)
-                every = _isolated_mask(ys)
-                if not any(every):
-                    every = max(1, len(xs) // 8)
-                ax.plot(xs, ys, **st, marker=style.MARKERS[k % len(style.MARKERS)],
-                        markevery=every, markersize=3.5, zorder=3,
-                        label=_wrap(f"{what}: use if value is {word}", 52))
-                k += 1
+    for k, (what, word, pts, xs, ys) in enumerate(_threshold_lines(a)):
+        ys_all += [y for _, y in pts]
+        st = style.line_style(k)
+        every = _isolated_mask(ys)
+        if not any(every):
+            every = max(1, len(xs) // 8)
+        ax.plot(xs, ys, **st, marker=style.MARKERS[k % len(style.MARKERS)],
+                markevery=every, markersize=3.5, zorder=3,
+                label=_wrap(f"{what}: use if value is {word}", 52))
     _today_marker(ax, a.present_value, f)
     pos = [v for v in ys_all if v and v > 0]
     _log_axis(ax, min(pos) / 1.3, max(pos) * 1.3)
