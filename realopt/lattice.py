@@ -205,8 +205,9 @@ def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, hori
     if tv_step <= steps:
         pieces[tv_step] += res.terminal_value
     before = pieces + after
-    if np.any(before[1:] <= 0) or not after[0] > 0:
-        k = int(np.argmax(before[1:] <= 0)) + 1
+    live = before[1:min(tv_step, steps) + 1]          # after the last date V is simply 0
+    if np.any(live <= 0) or not after[0] > 0:
+        k = int(np.argmax(live <= 0)) + 1
         raise ValuationError(
             f"The expected cash flows from year {times[k]:.4g} on are worth {before[k]:,.4g} "
             "at that date (at the discount rate); the lattice of project value needs this "

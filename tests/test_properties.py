@@ -29,7 +29,8 @@ def projects(draw, max_rights=4):
         n = draw(st.integers(1, 8))
         flows = tuple((float(y), draw(st.floats(1.0, 30.0))) for y in range(1, n + 1))
         under = Underlying(cash_flows=flows, terminal_value=draw(st.floats(0.0, 100.0)),
-                           volatility=sigma)
+                           volatility=sigma,
+                           flow_timing=draw(st.sampled_from(["at_dates", "spread"])))
     else:
         under = Underlying(present_value=draw(st.floats(20.0, 200.0)),
                            payout_yield=draw(st.floats(0.0, 0.06)), volatility=sigma)
