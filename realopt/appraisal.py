@@ -461,7 +461,7 @@ def _what(r, money: str) -> str:
 
 
 def _plausible(grid: Grid, t: Threshold) -> bool:
-    """Whether a threshold lies within 3 standard deviations of ln(project value) at its date
+    """Whether a threshold lies within 5 standard deviations of ln(project value) at its date
     (risk-neutral centre). Far out in the tree the boundary near a cash-flow date can be huge
     and says nothing useful in a one-line rule; it stays in the thresholds table."""
     if t.never:
@@ -471,7 +471,7 @@ def _plausible(grid: Grid, t: Threshold) -> bool:
     g = grid.probability * grid.up + (1 - grid.probability) * grid.down
     centre = grid.log_v0 + grid.log_carry[i] + i * math.log(g) + math.log(
         max(1e-300, 1.0 - grid.delta[i]))
-    return all(abs(math.log(b) - centre) <= 3.0 * sd + 1e-12
+    return all(abs(math.log(b) - centre) <= 5.0 * sd + 1e-12
                for b in (t.lower, t.upper) if b is not None and b > 0)
 
 
