@@ -6,6 +6,8 @@ Results support, and do not replace, professional judgement.
 from .model import Project  # noqa: F401
 from .errors import RealoptError, ProjectError, ValuationError  # noqa: F401
 
+__all__ = ["Project", "RealoptError", "ProjectError", "ValuationError", "appraise",
+           "load_project", "CAUTION"]
 __version__ = "0.1.0"
 
 CAUTION = (

@@ -9,8 +9,7 @@ no flexibility; ``expanded_npv`` uses every right optimally on the lattice. Each
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
-from functools import cached_property
+from dataclasses import dataclass
 
 import numpy as np
 

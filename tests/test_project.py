@@ -5,10 +5,8 @@ Outside references are named beside each check.
 """
 from __future__ import annotations
 
-import math
 import textwrap
 
-import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st

@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io
 import json
 import os
 import shutil

@@ -25,7 +25,6 @@ the searched span); None where the decision does not change inside the searched 
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field, replace
 from typing import Callable
 
