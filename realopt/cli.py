@@ -128,21 +128,23 @@ def _seconds(s: float) -> str:
     return f"{s / 3600:.1f} hours"
 
 
-def _excess(plan, memory) -> list[str]:
+def _excess(plan, memory, extra_solves: float = 0.0) -> list[str]:
     out = []
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:
         out.append(f"about {_bytes(plan.memory_bytes)} of memory (this machine has "
                    f"{_bytes(memory)} available)")
-    if plan.seconds_estimate > TIME_LIMIT:
-        out.append(f"about {_seconds(plan.seconds_estimate)} (the limit is "
-                   f"{_seconds(TIME_LIMIT)})")
+    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    if seconds > TIME_LIMIT:
+        out.append(f"about {_seconds(seconds)} (the limit is {_seconds(TIME_LIMIT)})")
     return out
 
 
-def guard_message(project, plan) -> str | None:
-    """None when the run fits this machine; otherwise why not and a smaller steps_per_year."""
+def guard_message(project, plan, extra_solves: float = 0.0) -> str | None:
+    """None when the run fits this machine; otherwise why not and a smaller steps_per_year.
+    ``extra_solves``: further lattice solves the command adds (in units of one solve of the
+    whole project at its grid), e.g. the report's sensitivities."""
     memory = available_memory()
-    excess = _excess(plan, memory)
+    excess = _excess(plan, memory, extra_solves)
     if not excess:
         return None
     head = (f"This run would need {' and '.join(excess)}: {plan.steps:,} lattice steps, "
@@ -150,27 +152,28 @@ def guard_message(project, plan) -> str | None:
     if project.lattice.explicit:
         return (head + " Fix: use a longer lattice.step_years or shorter windows, or pass "
                 "--allow-large to run anyway.")
-    smaller = _smaller_steps(project, plan, memory)
+    smaller = _smaller_steps(project, plan, memory, extra_solves)
     fix = (f" Fix: use --steps-per-year {smaller} (or lattice.steps_per_year: {smaller} in the "
            "file)" if smaller else " Fix: shorten the windows or value fewer rights together")
     return head + fix + ", or pass --allow-large to run anyway."
 
 
-def _smaller_steps(project, plan, memory) -> int | None:
+def _smaller_steps(project, plan, memory, extra_solves: float = 0.0) -> int | None:
     """The largest steps_per_year (searched downwards) whose plan fits this machine."""
     from .lattice import plan as make_plan
 
     spy = project.lattice.steps_per_year
     ratio = 1.0
-    if plan.seconds_estimate > TIME_LIMIT:
-        ratio = min(ratio, (TIME_LIMIT / plan.seconds_estimate) ** 0.5)
+    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    if seconds > TIME_LIMIT:
+        ratio = min(ratio, (TIME_LIMIT / seconds) ** 0.5)
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:
         ratio = min(ratio, MEMORY_SHARE * memory / plan.memory_bytes)
     k = max(1, int(spy * ratio * 0.95))
     for _ in range(60):
         trial = replace(project, lattice=replace(project.lattice, steps_per_year=k))
         try:
-            if not _excess(make_plan(trial), memory):
+            if not _excess(make_plan(trial), memory, extra_solves):
                 return k
         except ValuationError:
             return None
@@ -285,16 +288,18 @@ def _register_appraise(sub) -> None:
     p.set_defaults(run=run_appraise)
 
 
-def appraise_from_args(args):
+def appraise_from_args(args, extra_solves=None):
     """Load ``args.file`` with the overrides, refuse a run beyond the machine (unless
-    --allow-large), and appraise it; valuation errors name the file."""
+    --allow-large), and appraise it; valuation errors name the file. ``extra_solves(project)``:
+    the solves the command adds after the appraisal (counted by the guard)."""
     from .appraisal import appraise
     from .lattice import plan as make_plan
 
     project = load_from_args(args, args.file)
     try:
         if not args.allow_large:
-            refusal = guard_message(project, make_plan(project))
+            extra = extra_solves(project) if extra_solves else 0.0
+            refusal = guard_message(project, make_plan(project), extra)
             if refusal:
                 raise ValuationError(refusal)
         return appraise(project)

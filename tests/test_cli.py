@@ -449,3 +449,23 @@ def test_a_command_is_added_in_one_place(cli, monkeypatch):
     assert "dummy" in cli("--help").out
     res = cli("dummy", "hello")
     assert res.code == 0 and res.out == "dummy hello\n"
+
+
+def test_report_guard_counts_the_reports_extra_solves(cli, repo_root, monkeypatch, engine,
+                                                       tmp_path):
+    # A time limit between the appraisal's estimate and the report's (appraisal + sensitivities)
+    # lets appraise run but refuses report, before anything is written.
+    from realopt.lattice import plan
+    from realopt.outputs.sensitivity import report_solves
+
+    path = repo_root / "projects" / "coating_line.yaml"
+    project = realopt.load_project(path)
+    pl = plan(project)
+    report_estimate = pl.seconds_estimate * (1 + report_solves(project) / pl.solves)
+    assert report_estimate > 10 * pl.seconds_estimate
+    monkeypatch.setattr(cli_module, "TIME_LIMIT", 2 * pl.seconds_estimate)
+    assert cli("appraise", path).code == 0
+    out = tmp_path / "rep"
+    res = cli("report", path, "-o", out)
+    assert res.code == 1 and "the limit is" in res.err and "--allow-large" in res.err
+    assert "Traceback" not in res.text and not out.exists()

@@ -71,9 +71,9 @@ def register(sub) -> None:
 def run_report(args) -> int:
     from ..cli import _out, appraise_from_args
     from .report import write_report
-    from .sensitivity import DEFAULT_MOVES
+    from .sensitivity import DEFAULT_MOVES, report_solves
 
-    result = appraise_from_args(args)
+    result = appraise_from_args(args, extra_solves=report_solves)
     out = Path(args.output) if args.output else Path(f"{Path(args.file).stem}-report")
     write_report(result, out, source=args.file, moves=args.moves or DEFAULT_MOVES)
     _out(f"{args.file}: report written to {out}/ (report.html, report.pdf, report.md, "

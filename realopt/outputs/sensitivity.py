@@ -325,6 +325,21 @@ def breakevens(appraisal) -> list[BreakEven]:
     return out
 
 
+def report_solves(project: Project) -> float:
+    """Lattice solves the report adds after the appraisal, in units of one solve of the whole
+    project at its own grid (for the command line's memory/time guard): two per tornado input,
+    the break-even scans and bisections at most, and the convergence grids (cost ~ steps^2)."""
+    inputs = 3 + len(list(_money_inputs(project))) + len(list(_scale_inputs(project)))
+    solves = 2.0 * inputs + 4.0 * (SCAN_POINTS + BISECT_STEPS)
+    if not project.lattice.explicit:
+        chosen = int(project.lattice.steps_per_year)
+        for f in (0.25, 0.5, 2, 4, 8, 16):
+            n = max(1, round(chosen * f))
+            if n * float(project.horizon) <= MAX_CONVERGENCE_STEPS:
+                solves += (n / chosen) ** 2
+    return solves
+
+
 def convergence(appraisal) -> Convergence | None:
     """Expanded NPV over steps per year (x1/4 .. x16 of the chosen grid, capped in total
     steps); None for explicit up/down trees, whose step is fixed by the file."""
