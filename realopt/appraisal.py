@@ -228,7 +228,7 @@ def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, flo
     ``decision=False`` skips recording the policy (faster) and returns None for the decision."""
     v = _Valuer(project)
     graph = build_state_graph(v.rights)
-    sol = solve(v.grid, graph, record=decision)
+    sol = solve(v.grid, graph, record=decision, today_only=True)
     full = v._npv(sol, graph)
     if not decision:
         return v.static_npv, full, None

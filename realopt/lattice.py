@@ -304,13 +304,15 @@ def _record(policy, i, edges, cands, act, H, live):
                                              at(hi), at(hi + 1), at(hi + 2))
 
 
-def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
+def solve(grid: Grid, graph: StateGraph, record: bool = False,
+          today_only: bool = False) -> Solution:
     """Backward induction over every state at once.
 
     At step i (after that date's cash flow) a state's value is the best of carrying on, H_s, and
     each edge allowed at i: H_target + money received (one decision per date). The value carried
     back includes the state's flows at i: scale_s * delta_i * V + fixed_s. At the horizon a
     state is worth scale_s * V_ex + fixed_s * PV(fixed flows beyond the horizon).
+    ``record`` keeps the policy (every step, or step 0 only with ``today_only``).
     """
     rights_by_name = {r.name: r for r in graph.rights}
     live = [k for k, s in enumerate(graph.states) if not s.abandoned]
@@ -346,7 +348,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False) -> Solution:
         if edges:
             # candidates are computed from the carry-on values before any is overwritten
             cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
-            if record:
+            if record and (i == 0 or not today_only):
                 carry = H.copy()
                 act = np.zeros(H.shape, dtype=np.int16)
                 for (src, _, _, e_id), cand in zip(edges, cands):
