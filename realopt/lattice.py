@@ -20,7 +20,7 @@ import numpy as np
 from .errors import ValuationError
 from .model import Project
 from .rights import StateGraph
-from .underlying import ResolvedUnderlying, intensity
+from .underlying import ResolvedUnderlying, intensity, stream_accrued, stream_value_after
 
 _LOG_LIMIT = 700.0          # exp() stays finite in float64 below ~709
 
@@ -201,7 +201,7 @@ def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, hori
     pieces[1:] = res.accrued(times[:-1], times[1:])
     tv_step = int(round(res.last_flow_year / dt))
     tv_date = tv_step * dt
-    after = res._value_after(times, res.intensity, tv_date)
+    after = res.value_after(times, tv_date)
     if tv_step <= steps:
         pieces[tv_step] += res.terminal_value
     before = pieces + after
@@ -216,15 +216,10 @@ def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, hori
     delta = np.where(before > 0, pieces / np.where(before > 0, before, 1.0), 0.0)
     delta[0] = 0.0
     rf = intensity(market.risk_free_rate, market.compounding)
-    fixed = (res.period_start, res.last_flow_year)
-    unit = ResolvedUnderlying(present_value=1.0, flow_times=(fixed[1],),
-                              cash_flows=(fixed[1] - fixed[0],), payout=(), payout_yield=0.0,
-                              volatility=None, volatility_stderr=None, volatility_method="",
-                              last_flow_year=fixed[1], timing="spread",
-                              period_start=fixed[0], intensity=rf)
-    weight = np.zeros(steps + 1)
-    weight[1:] = unit.accrued(times[:-1], times[1:])
-    beyond = float(unit.value_after(horizon)) if fixed[1] > horizon else 0.0
+    unit = [(res.period_start, res.last_flow_year, res.last_flow_year - res.period_start)]
+    weight = np.zeros(steps + 1)                  # 1 a year of fixed flow, at the risk-free rate
+    weight[1:] = stream_accrued(unit, rf, times[:-1], times[1:])
+    beyond = float(stream_value_after(unit, rf, horizon)) if res.last_flow_year > horizon else 0.0
     return delta, weight, beyond
 
 

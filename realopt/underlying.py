@@ -55,33 +55,42 @@ class ResolvedUnderlying:
         amounts[-1] -= self.terminal_value
         return list(zip(starts, self.flow_times, amounts))
 
-    def value_after(self, t):
+    def value_after(self, t, tv_date=None):
         """``spread`` form: value at t (array, years) of the flows after t, at the discount rate,
-        with the terminal value paid at ``tv_date``. Each flow accrues at a constant rate over
-        its period."""
-        return self._value_after(np.asarray(t, float), self.intensity, self.last_flow_year)
+        with the terminal value paid at ``tv_date`` (default the last date). Each flow accrues at
+        a constant rate over its period."""
+        tv_date = self.last_flow_year if tv_date is None else tv_date
+        return stream_value_after(self.periods(), self.intensity, t, self.terminal_value, tv_date)
 
-    def _value_after(self, t, rho, tv_date):
-        out = np.where(t < tv_date - 1e-12, self.terminal_value * np.exp(-rho * (tv_date - t)),
-                       0.0)
-        for a, b, amount in self.periods():
-            c = amount / (b - a)
-            x = np.maximum(a, t)
-            out = out + np.where(b > x, c * np.exp(-rho * (x - t)) * _integral(-rho, b - x), 0.0)
-        return out
-
-    def accrued(self, t0, t1, rho=None):
+    def accrued(self, t0, t1):
         """``spread`` form: value at t1 of the flows accruing over (t0, t1] (arrays, years),
-        compounded to t1 at the discount intensity (or ``rho``)."""
-        rho = self.intensity if rho is None else rho
-        t0, t1 = np.asarray(t0, float), np.asarray(t1, float)
-        out = np.zeros(np.broadcast(t0, t1).shape)
-        for a, b, amount in self.periods():
-            c = amount / (b - a)
-            lo, hi = np.maximum(a, t0), np.minimum(b, t1)
-            out = out + np.where(hi > lo, c * np.exp(rho * (t1 - hi)) * _integral(
-                rho, np.maximum(hi - lo, 0.0)), 0.0)
-        return out
+        compounded to t1 at the discount intensity."""
+        return stream_accrued(self.periods(), self.intensity, t0, t1)
+
+
+def stream_value_after(periods, rho: float, t, terminal: float = 0.0, tv_date: float = 0.0):
+    """Value at t (array, years) of uniform streams ((start, end, amount) each) after t, at
+    continuous intensity rho, plus ``terminal`` paid at ``tv_date`` if that is after t."""
+    t = np.asarray(t, float)
+    out = np.where(t < tv_date - 1e-12, terminal * np.exp(-rho * (tv_date - t)), 0.0)
+    for a, b, amount in periods:
+        c = amount / (b - a)
+        x = np.maximum(a, t)
+        out = out + np.where(b > x, c * np.exp(-rho * (x - t)) * _integral(-rho, b - x), 0.0)
+    return out
+
+
+def stream_accrued(periods, rho: float, t0, t1):
+    """Value at t1 of what uniform streams ((start, end, amount) each) pay over (t0, t1],
+    compounded to t1 at continuous intensity rho (arrays, years)."""
+    t0, t1 = np.asarray(t0, float), np.asarray(t1, float)
+    out = np.zeros(np.broadcast(t0, t1).shape)
+    for a, b, amount in periods:
+        c = amount / (b - a)
+        lo, hi = np.maximum(a, t0), np.minimum(b, t1)
+        out = out + np.where(hi > lo, c * np.exp(rho * (t1 - hi)) * _integral(
+            rho, np.maximum(hi - lo, 0.0)), 0.0)
+    return out
 
 
 def _integral(rho: float, length):
