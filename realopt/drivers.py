@@ -706,7 +706,8 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
     rows = plan.chunk_rows(len(years) + (p + q) // 2)
     gens = [plan.year_draws(seed, t) for t in range(1, plan.horizon + 1)]
     shift = None
-    total, gram_cf = np.zeros(len(years)), np.zeros((len(years), len(years)))
+    total, dev_sum = np.zeros(len(years)), np.zeros(len(years))
+    gram_cf = np.zeros((len(years), len(years)))
     target_sum = 0.0
     gram, rhs, yy = np.zeros((p + q, p + q)), np.zeros(p + q), 0.0
     proxy_scale = 1.0
@@ -739,8 +740,9 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
         cf = np.broadcast_to(plan.cash_flow(env, "on a simulated path"), (c, len(years)))
         if shift is None:
             shift = cf.mean(axis=0)
-        dev = cf - shift
-        total += dev.sum(axis=0)
+        total += cf.sum(axis=0)
+        dev = cf - shift          # shifted sums for the covariance: no cancellation
+        dev_sum += dev.sum(axis=0)
         gram_cf += np.einsum("ci,cj->ij", dev, dev)
         if fit_it:
             target = np.sum(cf[:, later_mask] / d1, axis=1)
@@ -756,8 +758,8 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
         done += c
         bar.update(done)
     bar.close()
-    mean_dev = total / paths
-    expected = shift + mean_dev
+    expected = total / paths
+    mean_dev = dev_sum / paths
     cov = (gram_cf / paths - np.outer(mean_dev, mean_dev)) * (paths / (paths - 1)) / paths
     fit = None
     if need_fit:
