@@ -691,9 +691,10 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
     The regression of the discounted later flows on the year-one basis also takes control
     variates (driver noise after year one, zero mean given the year-one state): they leave the
     conditional expectation unchanged and remove most of the noise from the fit. With ``exact``
-    expected flows, the intercept is moved so that the fit's mean is the exact expectation of
-    the discounted later flows (a known mean used as a control): then E[V1] = V0 G(1) holds for
-    the exact V0 up to the noise of the year-one values alone.
+    expected flows, the intercept is moved so that the fitted conditional expectation averages,
+    over the year-one states drawn, to the exact expectation of the discounted later flows (a
+    known mean): then the mean of V1 is V0 G(1) for the exact V0, up to the sampling noise of the
+    year-one cash flow alone.
     """
     years = plan.years
     cols = {int(t): j for j, t in enumerate(years)}
@@ -708,7 +709,7 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
     shift = None
     total, dev_sum = np.zeros(len(years)), np.zeros(len(years))
     gram_cf = np.zeros((len(years), len(years)))
-    target_sum = 0.0
+    phi_sum = np.zeros(_n_terms(plan))
     gram, rhs, yy = np.zeros((p + q, p + q)), np.zeros(p + q), 0.0
     proxy_scale = 1.0
     if fit_it:
@@ -746,11 +747,11 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
         gram_cf += np.einsum("ci,cj->ij", dev, dev)
         if fit_it:
             target = np.sum(cf[:, later_mask] / d1, axis=1)
-            target_sum += float(target.sum())
             means = _later_means(plan, y1, later)
             xs_later = {i: xs[i][:, later_mask] for i in plan.uncertain}
-            design = np.hstack([_basis(plan, y1, _proxy(plan, means, later, d1), proxy_scale),
-                                _controls(plan, y1, xs_later, means, weights)])
+            phi = _basis(plan, y1, _proxy(plan, means, later, d1), proxy_scale)
+            phi_sum += phi.sum(axis=0)
+            design = np.hstack([phi, _controls(plan, y1, xs_later, means, weights)])
             # einsum, not BLAS: fixed summation order, and no thread spin under load
             gram += np.einsum("ci,cj->ij", design, design)
             rhs += np.einsum("ci,c->i", design, target)
@@ -768,8 +769,8 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
             rss = max(yy - float(coef @ rhs), 0.0)
             inv = np.linalg.pinv(gram, rcond=1e-12)
             coef = coef[:p].copy()
-            if exact is not None:   # intercept: the exact mean of the target, not the sample's
-                coef[0] += float(np.sum(exact[later_mask] / d1)) - target_sum / paths
+            if exact is not None:   # intercept: the fit averages to the exact mean of the target
+                coef[0] += float(np.sum(exact[later_mask] / d1)) - float(phi_sum @ coef) / paths
             fit = _Fit(coef, rss / max(paths - rank, 1) * inv[:p, :p], q, proxy_scale)
         else:
             fit = _Fit(np.zeros(p), np.zeros((p, p)), 0, proxy_scale)
