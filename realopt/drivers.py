@@ -709,7 +709,7 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
     shift = None
     total, dev_sum = np.zeros(len(years)), np.zeros(len(years))
     gram_cf = np.zeros((len(years), len(years)))
-    phi_sum = np.zeros(_n_terms(plan))
+    phi_sum = np.zeros(p)
     gram, rhs, yy = np.zeros((p + q, p + q)), np.zeros(p + q), 0.0
     proxy_scale = 1.0
     if fit_it:

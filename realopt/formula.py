@@ -115,16 +115,19 @@ class Formula:
         (0-d for a formula without names). Division by zero or overflow give inf/nan in the result
         without a warning: callers check ``np.isfinite``. Unknown names raise FormulaError.
         """
-        missing = [n for n in self._positions() if n[0] not in env]
-        if missing:
-            name, start, end = missing[0]
-            known = ", ".join(sorted(env)) or "none"
-            raise FormulaError(
-                f"cash-flow formula uses '{name}', which is not defined (defined: {known}); "
-                "add a driver of that name or correct the spelling", self.text, start, end)
+        self._check_defined(env)
         values = {n: np.asarray(env[n], dtype=float) for n in self.names}
         with np.errstate(all="ignore"):
             return np.asarray(_eval(self._tree, values), dtype=float)
+
+    def _check_defined(self, env, also=()) -> None:
+        missing = [n for n in self._positions() if n[0] not in env and n[0] not in also]
+        if missing:
+            name, start, end = missing[0]
+            known = ", ".join(sorted(set(env) | set(also))) or "none"
+            raise FormulaError(
+                f"cash-flow formula uses '{name}', which is not defined (defined: {known}); "
+                "add a driver of that name or correct the spelling", self.text, start, end)
 
     def is_affine(self, names) -> bool:
         """True when the formula is affine (degree <= 1) in ``names``: a sum of terms each linear
@@ -145,6 +148,7 @@ class Formula:
         one, give None. None also when the expansion would exceed MAX_TERMS terms.
         """
         index = {n: i for i, n in enumerate(variables)}
+        self._check_defined(env, index)
         values = {n: np.asarray(env[n], dtype=float) for n in self.names if n not in index}
         try:
             with np.errstate(all="ignore"):
