@@ -104,6 +104,7 @@ class Appraisal:
     fan: dict                         # percentile -> array of project values (real-world)
     expected_real_world: np.ndarray   # mean project value at fan_years, real-world drift
     expected_risk_neutral: np.ndarray
+    present_value_stderr: float = 0.0  # standard error of a simulated V0; 0.0 when exact
 
     def right(self, name: str) -> RightValue:
         return next(r for r in self.rights if r.name == name)
@@ -116,6 +117,7 @@ class Appraisal:
             "currency": p.currency,
             "unit": p.unit,
             "present_value": self.present_value,
+            "present_value_stderr": self.present_value_stderr,
             "investment_pv": self.investment_pv,
             "static_npv": self.static_npv,
             "expanded_npv": self.expanded_npv,
@@ -281,7 +283,8 @@ def appraise(project: Project) -> Appraisal:
         volatility=val.res.volatility, volatility_stderr=val.res.volatility_stderr,
         volatility_method=val.res.volatility_method, warnings=tuple(warnings),
         state_graph=graph, decision_maps=_decision_maps(sol, graph),
-        fan_years=fan_years, fan=fan, expected_real_world=mean_rw, expected_risk_neutral=mean_rn)
+        fan_years=fan_years, fan=fan, expected_real_world=mean_rw, expected_risk_neutral=mean_rn,
+        present_value_stderr=val.res.present_value_stderr or 0.0)
 
 
 # --------------------------------------------------------------------------------------------

@@ -365,7 +365,9 @@ def headline(a) -> str:
         return f"{label:<{w}}" + "".join(f"{c:>16}" for c in cols)
 
     out = [f"{p.name}", f"amounts in {money}, valued today", ""]
-    out.append(row("Present value of the operating project", "", num(a.present_value)))
+    se = getattr(a, "present_value_stderr", 0)   # simulated V0: its standard error beside it
+    out.append(row("Present value of the operating project", "",
+                   num(a.present_value) + (f" ± {se:,.2f}" if se else "")))
     out.append(row("Investment (present value)", "", num(-a.investment_pv)))
     out.append(row("Static NPV (commit now, no flexibility)", "", num(a.static_npv)))
     out.append("")
