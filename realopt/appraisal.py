@@ -555,20 +555,31 @@ def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
     ts = [t for t in thr if not t.never]
     if not ts:
         return head + ": not worth using at any node of the lattice at these inputs" + tail
-    return head + " " + _bound_text(ts, fmt) + tail
+    text = _bound_text(ts, fmt, once=True)
+    return head + (": " if text.startswith("used") else " ") + text + tail
 
 
-def _bound_text(ts, fmt) -> str:
+def _everywhere(year: float) -> str:
+    return "used today, at today's project value" if year == 0 else (
+        f"used at year {year:.3g}, at every project value")
+
+
+def _bound_text(ts, fmt, once: bool = False) -> str:
     """The policy found, from the thresholds of the dates where the right is used (sorted by
-    date): a date where it is used at every node ends the rule (nothing is left to decide)."""
-    first = ts[0]
-    if first.lower is None and first.upper is None:
-        return f"at year {first.year:.3g}, at every project value"
-    every = next((t for t in ts if t.lower is None and t.upper is None), None)
-    if every is not None:
-        ts = [t for t in ts if t.year < every.year]
-    ab = [t for t in ts if t.lower is not None]
-    be = [t for t in ts if t.upper is not None]
+    date). A date without bounds is one where every node of the tree uses the right: stated as
+    such, with its date. ``once``: a one-shot right, whose rule ends at the first date where it
+    is used at every node (nothing is left to decide); for a repeatable move, early dates where
+    the tree spans few values lead the bounds."""
+    every = [t for t in ts if t.lower is None and t.upper is None]
+    bounded = [t for t in ts if t.lower is not None or t.upper is not None]
+    if not bounded or (once and every and every[0].year <= bounded[0].year):
+        return _everywhere(every[0].year)
+    if once:
+        every = [t for t in every if t.year > bounded[0].year]
+    lead = [t for t in every if t.year < bounded[0].year]
+    late = [t for t in every if t.year > bounded[0].year]
+    ab = [t for t in bounded if t.lower is not None]
+    be = [t for t in bounded if t.upper is not None]
     if ab and (len(ab) >= len(be)):
         first, last = ab[0], ab[-1]
         txt = f"once project value exceeds {fmt(first.lower)} (year {first.year:.3g})"
@@ -579,8 +590,12 @@ def _bound_text(ts, fmt) -> str:
         txt = f"if project value falls below {fmt(first.upper)} (year {first.year:.3g})"
         if last is not first:
             txt += f", {fmt(last.upper)} by year {last.year:.3g}"
-    if every is not None:
-        txt += f"; at year {every.year:.3g}, at every project value"
+    if lead:
+        span = (f"at year {lead[0].year:.3g}" if len(lead) == 1 else
+                f"from year {lead[0].year:.3g} to {lead[-1].year:.3g}")
+        txt = f"{span} at every project value the tree reaches, then " + txt
+    if late:
+        txt += "; " + _everywhere(late[0].year)
     return txt
 
 
