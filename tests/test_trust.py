@@ -259,3 +259,47 @@ def test_one_date_switch_chance_matches_closed_form():
             sigma * math.sqrt(3.0))
         assert got == pytest.approx(norm_cdf(-d2), abs=5e-3)
         assert use.mode_shares["idle"][m][-1] == pytest.approx(norm_cdf(-d2), abs=5e-3)
+
+
+def test_build_staged_out_of_a_zero_scale_mode_is_an_american_call():
+    # Source: QuantLib BinomialVanillaEngine("crr") with the probability pinned to ours
+    # (references.quantlib_binomial): building at cost K out of a mode with no flows, at any
+    # time to year 4, is the American call on V with strike K; the base (nothing built) is worth 0.
+    ql = pytest.importorskip("QuantLib")  # noqa: F841
+    from references import quantlib_binomial
+    build = Switch(name="build", window=(0.0, 4.0), start="nothing",
+                   modes=(Mode("nothing", 0.0, 0.0), Mode("built", 1.0, 0.0)),
+                   costs=(("nothing", "built", Schedule.constant(110.0)),))
+    p = Project(name="x", market=Market(0.03, 0.08, "continuous"),
+                underlying=Underlying(present_value=100.0, payout_yield=0.05, volatility=0.35),
+                investment=Investment(((0.0, 0.0),)), rights=(build,),
+                lattice=LatticeSpec(steps_per_year=100))
+    a = realopt.appraise(p)
+    ref = quantlib_binomial("call", 100.0, 110.0, 0.03, 0.05, 0.35, 4.0, a.lattice.steps,
+                            pin_p=a.lattice.probability)
+    assert a.present_value == 0.0 and a.static_npv == 0.0
+    assert a.expanded_npv == pytest.approx(ref, abs=1e-8)
+    assert a.right("build").shapley_value == pytest.approx(ref, abs=1e-8)
+    assert "scale 0" in a.base
+
+
+def test_commit_and_use_a_right_at_the_same_date():
+    # Adding the defer right never lowers the value (common practice): committing today through
+    # it and switching out of a costly start mode at once is worth what the committed project
+    # with the switch alone is worth; the decision today says both.
+    sw = Switch(name="leave the costly mode", window=(0.0, 3.0), start="costly",
+                modes=(Mode("costly", 1.0, -3.0), Mode("lean", 1.0, 0.0)),
+                costs=(("costly", "lean", Schedule.constant(0.0)),))
+    now = Defer(name="commit", window=(0.0, 0.0))
+    base = Project(name="x", market=Market(0.03, 0.08, "continuous"),
+                   underlying=Underlying(present_value=100.0, payout_yield=0.05, volatility=0.3),
+                   investment=Investment(((0.0, 60.0),)), rights=(sw,),
+                   lattice=LatticeSpec(steps_per_year=12))
+    alone = realopt.appraise(base)
+    both = realopt.appraise(replace(base, rights=(now, sw)))
+    assert both.expanded_npv == pytest.approx(alone.expanded_npv, abs=1e-12)
+    assert both.right("commit").shapley_value == pytest.approx(0.0, abs=1e-12)
+    assert both.decision_today == "invest now (commit), and use 'leave the costly mode' at once"
+    # the switch is worth its saved fixed flows: 3 (1 - e^{-3r}) / r (closed form, annuity)
+    assert alone.flexibility_value == pytest.approx(3.0 * (1 - math.exp(-0.09)) / 0.03,
+                                                    rel=1e-12)
