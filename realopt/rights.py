@@ -344,7 +344,7 @@ def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: fl
                            "there are collected for giving up nothing. End the window before "
                            f"year {last:g} unless the {what} are truly available then.")
             else:
-                tv = "" if terminal_value is None else f" ({terminal_value:,.4g})"
+                tv = " (if any)" if terminal_value is None else f" ({terminal_value:,.4g})"
                 share = "replaces the terminal value" if r.kind == "abandon" else (
                     f"replaces its share ({r.scale:.0%}) of the terminal value")
                 out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
