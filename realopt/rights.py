@@ -97,9 +97,15 @@ def _live_requires(r, by_name) -> tuple[str, ...]:
 
 def usable_subset(rights, names) -> tuple[Right, ...]:
     """The rights named in ``names`` whose ``requires`` are (transitively) inside the subset. A
-    requirement on the defer right is met without it: the project is then committed today."""
+    requirement on the defer right is met without it: the project is then committed today (and
+    an exclusion with the defer right is then in force)."""
     by_name = {r.name: r for r in rights}
-    keep = {r.name: r for r in rights if r.name in names}
+    # a right excluded with the defer right can never be used: the project is committed (the
+    # defer right "used") from the start, with the defer right or without it (committed today)
+    defers = {r.name for r in rights if isinstance(r, Defer)}
+    never = {r.name for r in rights if not isinstance(r, Defer) and set(r.excludes) & defers}
+    never |= {x for r in rights if isinstance(r, Defer) for x in r.excludes}
+    keep = {r.name: r for r in rights if r.name in names and r.name not in never}
     changed = True
     while changed:
         changed = False
@@ -321,12 +327,15 @@ def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: fl
     The project ends at its last cash-flow date L: no right can be used after L; at L the rights
     are decided after that year's flow and before the terminal value, so a sale there replaces
     the terminal value (or, for a contraction, its share of it)."""
+    dead = unusable_rights(sg)
     out = [f"Right '{name}' can never be used: its requires/excludes rule out every state; it "
-           "adds nothing." for name in unusable_rights(sg)]
+           "adds nothing." for name in dead]
     if last_flow_year is None:
         return out
     last = last_flow_year
     for r in sg.rights:
+        if r.name in dead:
+            continue
         if r.window[1] > last + 1e-9:
             never = r.window[0] > last + 1e-9 or (
                 r.exercise == "european") or (r.exercise == "bermudan" and not any(

@@ -303,3 +303,23 @@ def test_commit_and_use_a_right_at_the_same_date():
     # the switch is worth its saved fixed flows: 3 (1 - e^{-3r}) / r (closed form, annuity)
     assert alone.flexibility_value == pytest.approx(3.0 * (1 - math.exp(-0.09)) / 0.03,
                                                     rel=1e-12)
+
+
+def test_exclusion_with_the_defer_right_holds_in_every_subset():
+    # The project is committed from the start with the defer right or without it (committed
+    # today), so a right excluded with the defer right can never be used, in any subset; it adds
+    # nothing and takes nothing (Shapley 1953: a null player gets 0).
+    from realopt.project import loads
+    p = loads("""
+        project: {name: Excluded sale}
+        market: {risk_free_rate: 0.03, discount_rate: 0.08}
+        underlying: {cash_flows: {1: 10, 2: 10, 3: 10}, terminal_value: 50, volatility: 0.3}
+        investment: {cost: 60}
+        rights:
+          - {name: wait, type: defer, window: [0, 2]}
+          - {name: sell, type: abandon, salvage: 55, window: [0, 3], excludes: [wait]}
+        """.replace("\\n        ", "\\n"))
+    a = realopt.appraise(p)
+    assert a.right("sell").standalone_value == 0.0 and a.right("sell").shapley_value == 0.0
+    assert a.right("wait").shapley_value == pytest.approx(a.flexibility_value, abs=1e-12)
+    assert any("'sell' can never be used" in w for w in a.headline_warnings)
