@@ -284,7 +284,7 @@ def appraise(project: Project) -> Appraisal:
     v0 = val.res.present_value
     rights = tuple(
         _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
-                     (rw_state, rw_ex), sample, fmt, v0, project.market)
+                     (rw_state, rw_ex), sample, fmt, v0)
         for r in val.rights)
     headline = structure_warnings(graph, val.res.last_flow_year, grid.horizon,
                                   terminal_value=val.res.terminal_value)
@@ -441,7 +441,7 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
     return out
 
 
-def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0, market) -> RightValue:
+def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightValue:
     grid = sol.grid
     edge_ids = [k for k, e in enumerate(graph.edges) if e.right == r.name]
     prim = _primary_states(r, graph)
@@ -574,8 +574,6 @@ def _bound_text(ts, fmt, once: bool = False) -> str:
     bounded = [t for t in ts if t.lower is not None or t.upper is not None]
     if not bounded or (once and every and every[0].year <= bounded[0].year):
         return _everywhere(every[0].year)
-    if once:
-        every = [t for t in every if t.year > bounded[0].year]
     lead = [t for t in every if t.year < bounded[0].year]
     late = [t for t in every if t.year > bounded[0].year]
     ab = [t for t in bounded if t.lower is not None]
