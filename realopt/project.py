@@ -1634,9 +1634,11 @@ class _Builder:
                 if abs(c0 - ipv) > 1e-9 * max(1.0, abs(ipv)):
                     self.warn(("rights", Index(i), "cost"),
                               f"{r.name}: the cost of committing at year 0 is {c0:,.4g} but "
-                              f"investment.cost is worth {ipv:,.4g} today, so the flexibility is "
-                              "not measured against the same commitment as the static NPV; leave "
-                              "out the right's cost to use the investment plan, or make them agree")
+                              f"investment.cost is worth {ipv:,.4g} today; committing today "
+                              f"through '{r.name}' costs the investment's present value (the "
+                              "same commitment as the static NPV) and this cost applies at its "
+                              "later exercise dates; leave out the right's cost to use the "
+                              "investment plan throughout, or make them agree")
         # windows past the last cash-flow year: warned by the valuation (realopt.appraisal)
         if lattice.explicit and underlying.cash_flows:
             for y, _ in underlying.cash_flows:

@@ -322,7 +322,7 @@ def test_warnings(minimal_project_text):
     text = minimal_project_text.replace("rights:\n", "rights:\n  - {name: Wait, type: defer, "
                                         "window: [0, 2], cost: 75}\n")
     p = loads(text)
-    assert len(p.warnings) == 1 and "not measured against the same commitment" in p.warnings[0]
+    assert len(p.warnings) == 1 and "costs the investment's present value" in p.warnings[0]
     assert "75" in p.warnings[0] and "70" in p.warnings[0]
     assert loads(text.replace("cost: 75}", "cost: 70}")).warnings == ()
     p = loads("""
