@@ -46,6 +46,7 @@ from ..errors import RealoptError
 from ..model import (Abandon, Contract, Defer, Driver, Expand, Project, Right, Schedule, Switch,
                      Underlying)
 from ..project import DRIVER_FORM_KEYS, Tree, apply_overrides, build_project
+from ..underlying import resolve
 
 VOL_RANGE = (0.02, 1.50)          # searched for the volatility break-even (yearly sigma)
 COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even (x today's cost)
@@ -286,12 +287,17 @@ class Copier:
         if u.drivers is None or u.volatility_estimate is None:
             return {"underlying.volatility": sigma}
         if self._frozen is None:
-            from ..drivers import simulate_underlying
+            if u.terminal_value == 0.0:       # the appraisal's own flows (nothing added to them)
+                res = resolve(self.project)
+                flows = tuple(zip(res.flow_times, res.cash_flows))
+            else:
+                from ..drivers import simulate_underlying
 
-            sim = simulate_underlying(u.drivers, u.volatility_estimate, self.project.market)
+                flows = simulate_underlying(u.drivers, u.volatility_estimate,
+                                            self.project.market).cash_flows
             raw = self.data.get("underlying") or {}
             keep = {k: v for k, v in raw.items() if k not in DRIVER_FORM_KEYS + ("volatility",)}
-            self._frozen = {**keep, "cash_flows": _years_raw(sim.cash_flows)}
+            self._frozen = {**keep, "cash_flows": _years_raw(flows)}
         return {"underlying": {**copy.deepcopy(self._frozen), "volatility": sigma}}
 
 
