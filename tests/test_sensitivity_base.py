@@ -333,3 +333,43 @@ def test_a_project_no_file_can_state_gets_no_sensitivity():
     assert S.breakevens(a) == [] and S.convergence(a) is None
     assert math.isfinite(a.expanded_npv)
 
+
+
+# ------------------------------------------------------------------ the documents cited
+def test_code_and_docs_cite_only_documents_in_the_repository():
+    """Help text, docstrings and guides cite docs/*.md, which must exist; no other design file."""
+    texts = {f: f.read_text(encoding="utf-8") for f in
+             list((ROOT / "realopt").rglob("*.py")) + list((ROOT / "tests").rglob("*.py"))
+             + [ROOT / "README.md", ROOT / "DEVELOPERS.md"] + list((ROOT / "docs").glob("*.md"))
+             if f.exists()}
+    design = "DESIGN" + ".md"                   # split so this file does not cite it either
+    shared = "../" + "shared/"
+    assert not [f.name for f, t in texts.items() if design in t or shared in t]
+    import re
+    cited = {m for t in texts.values() for m in re.findall(r"docs/([\w-]+\.md)", t)}
+    assert cited >= {"design.md", "file-format.md"}
+    assert all((ROOT / "docs" / name).is_file() for name in cited), cited
+
+
+def test_results_contract_keys_are_documented():
+    """docs/design.md names every key of Appraisal.to_dict() (top level, rights[], lattice)."""
+    doc = (ROOT / "docs" / "design.md").read_text(encoding="utf-8")
+    a = realopt.appraise(generated("cash_flows"))
+    d = a.to_dict()
+    right = d["rights"][0]
+    keys = (set(d) | set(right) | set(d["lattice"]) | set(right["thresholds"][0])
+            | set(right["chance_of_use"]))
+    assert not [k for k in sorted(keys) if f"`{k}`" not in doc and f"`{k}[]`" not in doc]
+
+
+def test_file_format_names_every_key_the_loader_accepts():
+    """docs/file-format.md names every key of the loader's key lists."""
+    from realopt import project as loader
+
+    doc = (ROOT / "docs" / "file-format.md").read_text(encoding="utf-8")
+    keys = set(loader.TOP_KEYS + loader.PROJECT_KEYS + loader.MARKET_KEYS + loader.UNDERLYING_KEYS
+               + loader.LATTICE_KEYS + loader.COMMON_RIGHT_KEYS + loader.FORECAST_KEYS)
+    keys |= {k for ks in loader.RIGHT_KEYS.values() for k in ks} | set(loader.RIGHT_KEYS)
+    keys |= {"estimate", "paths", "seed", "column", "periods_per_year", "process", "start",
+             "drift", "volatility", "long_run", "speed", "schedule", "growth", "fixed"}
+    assert not [k for k in sorted(keys) if k not in doc]
