@@ -122,7 +122,7 @@ class Appraisal:
         return next(r for r in self.rights if r.name == name)
 
     def to_dict(self) -> dict:
-        """The DESIGN.md results contract (plain JSON types)."""
+        """The results contract of docs/design.md, section 6 (plain JSON types)."""
         p = self.project
         return {
             "project": p.name,

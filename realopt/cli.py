@@ -273,7 +273,7 @@ def _register_appraise(sub) -> None:
             between the rights, the expanded NPV, and the exercise rule of each right in plain
             words. Amounts are in the currency and unit of the file, valued today.
 
-            With --json, print instead one JSON object (the results contract of DESIGN.md:
+            With --json, print instead one JSON object (the results contract of docs/design.md:
             present_value, investment_pv, static_npv, expanded_npv, flexibility_value, rights[],
             lattice, ...)."""),
         epilog=textwrap.dedent("""\

@@ -296,6 +296,9 @@ class Project:
     unit: str = ""
     source: str | None = None
     warnings: tuple[str, ...] = ()
+    # the raw tree the loader validated (overrides applied) and its folder, so that moved copies
+    # (realopt.outputs.sensitivity) go through the loader again; None when built in Python
+    origin: tuple | None = field(default=None, compare=False, repr=False)
 
     @property
     def horizon(self) -> float:

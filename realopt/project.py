@@ -19,12 +19,13 @@ compounded as ``market.compounding`` says, money in the project's currency and u
 """
 from __future__ import annotations
 
+import copy
 import difflib
 import importlib
 import keyword
 import math
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -1669,8 +1670,10 @@ _FORM_HINTS = {
 
 
 def build_project(tree: Tree, base_dir) -> model.Project:
-    """Validate a raw :class:`Tree` into a Project (ProjectError lists every problem)."""
-    return _Builder(tree, Path(base_dir)).build()
+    """Validate a raw :class:`Tree` into a Project (ProjectError lists every problem); the
+    Project keeps a copy of the raw tree as ``origin`` (data, folder) for moved copies."""
+    origin = (copy.deepcopy(tree.data), str(Path(base_dir).resolve()))
+    return replace(_Builder(tree, Path(base_dir)).build(), origin=origin)
 
 
 def load_project(path, overrides: Mapping[str, Any] | None = None, *,

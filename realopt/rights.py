@@ -5,7 +5,7 @@ been used, the current mode of each switch right, or that it was abandoned (abso
 carries ``scale`` (multiplier on the base project's future cash flows) and ``fixed`` (yearly flow
 in that state, + = inflow). Each right contributes edges (source, target, money on exercise).
 
-Usage rules (documented in DESIGN.md and the README):
+Usage rules (documented in docs/design.md, section 3, and docs/file-format.md):
 * defer is the only edge out of "not yet invested"; every other right needs the project invested;
 * expand/contract are used at most once; switch edges may be taken any number of times;
 * abandon pays salvage and ends the project, from every invested state;

@@ -3,7 +3,7 @@
 DIR receives ``report.html`` (self-contained: figures embedded as base64 PNG, no network fetch,
 print CSS that fits A4 and Letter), ``report.pdf`` (the same content as A4 pages, matplotlib's
 PDF backend), ``report.md`` (for pasting; figures linked from ``figures/``), ``results.json``
-(the DESIGN.md results contract, ``Appraisal.to_dict()``), ``tables/*.csv`` (and
+(the results contract of docs/design.md, ``Appraisal.to_dict()``), ``tables/*.csv`` (and
 ``tables.xlsx`` when openpyxl is installed), ``figures/*.png`` at print resolution, and
 ``.realopt-report`` (a manifest that marks the folder as a report realopt may replace).
 
