@@ -25,6 +25,7 @@ from dataclasses import replace
 
 from . import __version__
 from .errors import ProjectError, RealoptError, ValuationError
+from .jsontext import _plain, to_json  # noqa: F401  (one serializer for every JSON result)
 
 PROG = "realopt"
 MEMORY_SHARE = 0.5          # refuse a run needing more than this share of the available memory
@@ -316,36 +317,6 @@ def run_appraise(args) -> int:
     return 0
 
 
-def _plain(obj):
-    """JSON default: numpy scalars and arrays to Python numbers and lists."""
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    if isinstance(obj, (set, frozenset)):
-        return sorted(obj)
-    raise TypeError(f"{type(obj).__name__} is not JSON serialisable")
-
-
-def _finite(obj):
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_finite(v) for v in obj]
-    return obj
-
-
-def to_json(data) -> str:
-    """Strict JSON text (non-finite numbers, which JSON cannot hold, become null)."""
-    import json
-
-    try:
-        return json.dumps(data, indent=2, default=_plain, allow_nan=False)
-    except ValueError:
-        return json.dumps(_finite(json.loads(json.dumps(data, default=_plain))), indent=2,
-                          allow_nan=False)
-
-
 def headline(a) -> str:
     """The headline table of an Appraisal as text."""
     from . import CAUTION
@@ -416,6 +387,7 @@ COMMANDS = (
     _register_check,
     _register_appraise,
     "realopt.outputs.command:register",
+    "realopt.sweep:register",
 )
 
 

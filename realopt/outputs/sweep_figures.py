@@ -1,0 +1,129 @@
+"""Figures of a sweep (``realopt sweep``), from its table (one row a point).
+
+* One varied key: expanded NPV, static NPV and flexibility value against the key; points where
+  the decision today is to wait are marked.
+* Two varied keys: a heat map of expanded NPV over the grid (first key across, second up), with
+  the boundary where the decision today changes (invest now / wait) drawn along the cell edges
+  between points on either side of it.
+
+Amounts are those of the table (the project's currency and unit, valued today). Keys whose
+values are all numbers get a numeric axis; other values (lists, text) are placed evenly in the
+order given and labelled as written.
+"""
+from __future__ import annotations
+
+import io
+
+import numpy as np
+
+from . import style
+
+
+def _axis(values):
+    """(positions, tick labels or None, numeric?) of a key's distinct values in order."""
+    distinct = list(dict.fromkeys(values))
+    if all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool)
+           for v in distinct):
+        return np.array(distinct, float), None, True
+    return np.arange(len(distinct), dtype=float), [str(v) for v in distinct], False
+
+
+def _edges(pos):
+    """Cell edges around sorted positions (half a spacing beyond each end)."""
+    if len(pos) == 1:
+        return np.array([pos[0] - 0.5, pos[0] + 0.5])
+    mid = (pos[1:] + pos[:-1]) / 2
+    return np.concatenate([[pos[0] - (mid[0] - pos[0])], mid, [pos[-1] + (pos[-1] - mid[-1])]])
+
+
+def _is_wait(text) -> bool:
+    return str(text or "").startswith("wait")
+
+
+def draw_one(fig, df, key, money: str = "") -> None:
+    ax = fig.add_subplot(1, 1, 1)
+    x, labels, _ = _axis(df[key].tolist())
+    order = np.argsort(x, kind="stable")
+    for k, (col, name) in enumerate((("expanded_npv", "expanded NPV"),
+                                     ("static_npv", "static NPV"),
+                                     ("flexibility_value", "flexibility value"))):
+        y = df[col].to_numpy(float)
+        ax.plot(x[order], y[order], label=name, marker=style.MARKERS[k], markersize=3.5,
+                **style.line_style(k))
+    wait = np.array([_is_wait(t) for t in df["decision_today"]])
+    if wait.any():
+        ax.plot(x[wait], df["expanded_npv"].to_numpy(float)[wait], linestyle="none",
+                marker="o", markersize=8, markerfacecolor="none", color=style.INK,
+                label="decision today: wait")
+    if labels is not None:
+        ax.set_xticks(x, labels, rotation=20 if max(len(s) for s in labels) > 6 else 0)
+    ax.axhline(0.0, color=style.MUTED, linewidth=0.7)
+    ax.set_xlabel(key)
+    ax.set_ylabel(f"value today{f' ({money})' if money else ''}")
+    ax.set_title(f"Values against {key}")
+    ax.legend(loc="best")
+
+
+def draw_two(fig, df, keys, money: str = "") -> None:
+    kx, ky = keys
+    x, xl, _ = _axis(df[kx].tolist())
+    y, yl, _ = _axis(df[ky].tolist())
+    xi = {v: i for i, v in enumerate(dict.fromkeys(df[kx].tolist()))}
+    yi = {v: i for i, v in enumerate(dict.fromkeys(df[ky].tolist()))}
+    xo, yo = np.argsort(x, kind="stable"), np.argsort(y, kind="stable")
+    xrank, yrank = np.empty_like(xo), np.empty_like(yo)
+    xrank[xo], yrank[yo] = np.arange(len(x)), np.arange(len(y))
+    z = np.full((len(y), len(x)), np.nan)
+    wait = np.zeros((len(y), len(x)), bool)
+    for vx, vy, val, dec in zip(df[kx], df[ky], df["expanded_npv"], df["decision_today"]):
+        r, c = yrank[yi[vy]], xrank[xi[vx]]
+        z[r, c] = float(val)
+        wait[r, c] = _is_wait(dec)
+    xs, ys = x[xo], y[yo]
+    ex, ey = _edges(xs), _edges(ys)
+    ax = fig.add_subplot(1, 1, 1)
+    mesh = ax.pcolormesh(ex, ey, z, cmap="cividis", shading="flat")
+    bar = fig.colorbar(mesh, ax=ax)
+    bar.set_label(f"expanded NPV{f' ({money})' if money else ''}")
+    first = True
+    for r in range(len(ys)):          # boundary: cell edges between wait and invest-now points
+        for c in range(len(xs)):
+            if c + 1 < len(xs) and wait[r, c] != wait[r, c + 1]:
+                ax.plot([ex[c + 1]] * 2, [ey[r], ey[r + 1]], color="white", linewidth=2.4,
+                        label="decision today changes (invest now / wait)" if first else None)
+                first = False
+            if r + 1 < len(ys) and wait[r, c] != wait[r + 1, c]:
+                ax.plot([ex[c], ex[c + 1]], [ey[r + 1]] * 2, color="white", linewidth=2.4,
+                        label="decision today changes (invest now / wait)" if first else None)
+                first = False
+    for r in range(len(ys)):
+        for c in range(len(xs)):
+            if wait[r, c] and len(xs) * len(ys) <= 400:
+                ax.text(xs[c], ys[r], "W", ha="center", va="center", fontsize=6,
+                        color="white")
+    if xl is not None:
+        ax.set_xticks(xs, [xl[i] for i in xo])
+    if yl is not None:
+        ax.set_yticks(ys, [yl[i] for i in yo])
+    ax.set_xlabel(kx)
+    ax.set_ylabel(ky)
+    ax.grid(False)
+    note = "W: wait (keep the right to invest); other cells: invest now"
+    ax.set_title("Expanded NPV over the grid" + ("" if first else ""))
+    if not first:
+        ax.legend(loc="upper left", bbox_to_anchor=(0, -0.12), frameon=False)
+    if wait.any():
+        fig.text(0.99, 0.005, note, ha="right", va="bottom", fontsize=7, color=style.MUTED)
+
+
+def sweep_png(df, keys, money: str = "", dpi: int = 200) -> bytes:
+    """PNG bytes of the sweep's figure for one or two varied ``keys``."""
+    with style.styled():
+        fig = style.new_figure(3.6 if len(keys) == 1 else 4.4)
+        if len(keys) == 1:
+            draw_one(fig, df, keys[0], money)
+        else:
+            draw_two(fig, df, keys, money)
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
