@@ -36,6 +36,16 @@ def _edges(pos):
     return np.concatenate([[pos[0] - (mid[0] - pos[0])], mid, [pos[-1] + (pos[-1] - mid[-1])]])
 
 
+_LABEL = "decision today changes (invest now / wait)"
+
+
+def _boundary_style():
+    from matplotlib import patheffects
+
+    return {"color": "white", "linewidth": 2.2, "solid_capstyle": "projecting",
+            "path_effects": [patheffects.withStroke(linewidth=3.6, foreground=style.INK)]}
+
+
 def _is_wait(text) -> bool:
     return str(text or "").startswith("wait")
 
@@ -85,22 +95,24 @@ def draw_two(fig, df, keys, money: str = "") -> None:
     mesh = ax.pcolormesh(ex, ey, z, cmap="cividis", shading="flat")
     bar = fig.colorbar(mesh, ax=ax)
     bar.set_label(f"expanded NPV{f' ({money})' if money else ''}")
+    _BOUNDARY = _boundary_style()
     first = True
     for r in range(len(ys)):          # boundary: cell edges between wait and invest-now points
         for c in range(len(xs)):
             if c + 1 < len(xs) and wait[r, c] != wait[r, c + 1]:
-                ax.plot([ex[c + 1]] * 2, [ey[r], ey[r + 1]], color="white", linewidth=2.4,
-                        label="decision today changes (invest now / wait)" if first else None)
+                ax.plot([ex[c + 1]] * 2, [ey[r], ey[r + 1]], label=_LABEL if first else None,
+                        **_BOUNDARY)
                 first = False
             if r + 1 < len(ys) and wait[r, c] != wait[r + 1, c]:
-                ax.plot([ex[c], ex[c + 1]], [ey[r + 1]] * 2, color="white", linewidth=2.4,
-                        label="decision today changes (invest now / wait)" if first else None)
+                ax.plot([ex[c], ex[c + 1]], [ey[r + 1]] * 2, label=_LABEL if first else None,
+                        **_BOUNDARY)
                 first = False
+    bright = mesh.norm(z) > 0.6
     for r in range(len(ys)):
         for c in range(len(xs)):
             if wait[r, c] and len(xs) * len(ys) <= 400:
                 ax.text(xs[c], ys[r], "W", ha="center", va="center", fontsize=6,
-                        color="white")
+                        color=style.INK if bright[r, c] else "white")
     if xl is not None:
         ax.set_xticks(xs, [xl[i] for i in xo])
     if yl is not None:
@@ -109,7 +121,7 @@ def draw_two(fig, df, keys, money: str = "") -> None:
     ax.set_ylabel(ky)
     ax.grid(False)
     note = "W: wait (keep the right to invest); other cells: invest now"
-    ax.set_title("Expanded NPV over the grid" + ("" if first else ""))
+    ax.set_title("Expanded NPV over the grid")
     if not first:
         ax.legend(loc="upper left", bbox_to_anchor=(0, -0.12), frameon=False)
     if wait.any():
