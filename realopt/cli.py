@@ -388,6 +388,7 @@ COMMANDS = (
     _register_appraise,
     "realopt.outputs.command:register",
     "realopt.sweep:register",
+    "realopt.portfolio:register",
 )
 
 

@@ -264,6 +264,7 @@ class Solution:
     policy: Policy | None
     grid: Grid
     graph: StateGraph
+    carry: np.ndarray | None = None   # (states,) carry-on value at t = 0, before today's choice
 
 
 def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
@@ -340,6 +341,8 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         else:
             H = X
         edges = per_step[i]
+        if i == 0:
+            carry0 = H[:, 0].copy()
         if edges:
             # candidates are computed from the carry-on values before any is overwritten
             cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
@@ -368,7 +371,9 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
-    return Solution(values=values, policy=policy, grid=grid, graph=graph)
+    carry = np.zeros(len(graph.states))
+    carry[live] = carry0
+    return Solution(values=values, policy=policy, grid=grid, graph=graph, carry=carry)
 
 
 def occupancy(sol: Solution, p: float):
