@@ -24,7 +24,7 @@ from dataclasses import replace
 
 from .errors import RealoptError
 
-CONNECT_TIMEOUT = 4.0       # seconds to reach a --scheduler before giving up
+CONNECT_TIMEOUT = 3.0       # seconds to reach a --scheduler before giving up
 WORKER_WAIT = 15.0          # seconds to wait for a connected cluster to have a worker
 
 

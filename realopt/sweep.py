@@ -419,25 +419,27 @@ def run_sweep(args) -> int:
     manifest = manifest_for(args, varies, fixed)
     _check_folder(out, manifest, args.resume)
     projects = validate_points(args, varies, points, fixed)      # before any work is sent
-    prepare_folder(out, manifest, args.resume)
-    done = done_points(out, len(points))
+    done = done_points(out, len(points)) if args.resume and (out / MANIFEST).is_file() else set()
     todo = [i for i in range(len(points)) if i not in done]
-    computed, failed = 0, []
+    computed, duplicates, failed = 0, 0, []
 
     def arrived(i, value):
-        nonlocal computed
+        nonlocal computed, duplicates
         status, text = value
         if status != "ok":
             failed.append((point_label(varies, points[i]), text))
             return
         path = point_path(out, i)
-        if not path.exists():                  # each point is written once
-            write_atomic(path, text + "\n")
-            computed += 1
+        if path.exists():                      # each point is written once
+            duplicates += 1
+            return
+        write_atomic(path, text + "\n")
+        computed += 1
 
     if todo:
         try:
             with dask_client(args.workers, args.scheduler, tasks=len(todo)) as client:
+                prepare_folder(out, manifest, args.resume)      # once the cluster answers
                 run_all(client, appraise_text, ((i, projects[i]) for i in todo), arrived,
                         quiet=args.quiet)
         except KeyboardInterrupt:
@@ -445,6 +447,8 @@ def run_sweep(args) -> int:
             _err(f"sweep interrupted: {have} of {len(points)} points are in {out}/points. Fix: "
                  "run the same command with --resume to compute the rest")
             raise
+    else:
+        prepare_folder(out, manifest, args.resume)
     if failed:
         head = (f"{args.file}: {len(failed)} point{'s' if len(failed) != 1 else ''} could not "
                 f"be valued ({len(points) - len(failed)} are in {out}/points):")
@@ -456,7 +460,8 @@ def run_sweep(args) -> int:
     figure = _figure(out, varies, typed)
     _out(f"{args.file}: {len(points)} points ({computed} computed now, {len(done)} from an "
          f"earlier run) in {out}/: sweep.csv, sweep.parquet, points/"
-         + (f", {figure}" if figure else ""))
+         + (f", {figure}" if figure else "")
+         + (f"; {duplicates} duplicate results ignored" if duplicates else ""))
     return 0
 
 
