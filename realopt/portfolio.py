@@ -17,8 +17,9 @@ investment's year-0 outlays, or, with a defer right that has its own ``cost``, t
 
 With a budget, :func:`choose` finds the decisions (one per project) that maximise the sum of the
 values while the sum of today's outlays stays within the budget: a multiple-choice knapsack solved
-exactly on the real outlays (no rounding of money: sums are exact rationals of the float64
-inputs) by dynamic programming over the Pareto frontier of (outlay, value) of partial choices
+exactly on the real outlays (no rounding of money: each amount is taken as the shortest decimal
+that reads back as its float, i.e. as written in the file, and sums are exact rationals, so
+outlays of 0.1 and 0.2 fit a budget of 0.3) by dynamic programming over the Pareto frontier of (outlay, value) of partial choices
 (Nemhauser & Ullmann 1969), which keeps every undominated partial choice, so the optimum is never
 pruned. The value given up by the budget is the unconstrained optimum minus the budgeted one.
 """
@@ -97,23 +98,28 @@ def options(commit_value: float, keep_value: float | None, outlay: float) -> tup
     return tuple(out)
 
 
+def _exact(x: float) -> Fraction:
+    """The amount as the shortest decimal that reads back as the float ``x``, exactly."""
+    return Fraction(repr(float(x)))
+
+
 def choose(groups, budget: float | None):
     """Exact multiple-choice knapsack: one option per group maximising the sum of values with
     the sum of outlays <= ``budget`` (None: no limit). Returns (indices of the chosen option per
     group, total value as a Fraction, total outlay as a Fraction). Ties: the smaller outlay,
     then the earlier options. Every group must hold an option of outlay 0 or less, so a choice
     always exists (pass)."""
-    cap = None if budget is None else Fraction(budget)
+    cap = None if budget is None else _exact(budget)
     # frontier: list of (outlay, value, choice tuple), outlay ascending and value strictly rising
     frontier = [(Fraction(0), Fraction(0), ())]
     for opts in groups:
         cand = []
         for w, v, ch in frontier:
             for k, o in enumerate(opts):
-                w2 = w + Fraction(o.outlay)
+                w2 = w + _exact(o.outlay)
                 if cap is not None and w2 > cap:
                     continue
-                cand.append((w2, v + Fraction(o.value), ch + (k,)))
+                cand.append((w2, v + _exact(o.value), ch + (k,)))
         if not cand:
             raise RealoptError("internal: no choice fits the budget")
         cand.sort(key=lambda t: (t[0], -t[1], t[2]))
@@ -129,13 +135,13 @@ def brute_force(groups, budget: float | None):
     """Every combination (for tests): same result contract as :func:`choose`."""
     import itertools
 
-    cap = None if budget is None else Fraction(budget)
+    cap = None if budget is None else _exact(budget)
     best = None
     for ch in itertools.product(*(range(len(g)) for g in groups)):
-        w = sum((Fraction(g[k].outlay) for g, k in zip(groups, ch)), Fraction(0))
+        w = sum((_exact(g[k].outlay) for g, k in zip(groups, ch)), Fraction(0))
         if cap is not None and w > cap:
             continue
-        v = sum((Fraction(g[k].value) for g, k in zip(groups, ch)), Fraction(0))
+        v = sum((_exact(g[k].value) for g, k in zip(groups, ch)), Fraction(0))
         key = (v, -w)
         if best is None or key > best[0]:
             best = (key, list(ch), v, w)
