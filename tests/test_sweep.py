@@ -397,3 +397,27 @@ def test_progress_bar_shows_done_rate_and_time_left():
     assert lines[0].startswith("[") and "0/4 points" in lines[0]
     assert any("2/4 points" in x and "/s" in x and "left" in x for x in lines)
     assert lines[-1].endswith("done")
+
+
+def test_sweep_chart_for_the_report(tmp_path):
+    import pandas as pd
+
+    from realopt.outputs.figures import render
+    from realopt.outputs.sweep_figures import sweep_chart
+
+    folder = tmp_path / "s"
+    folder.mkdir()
+    rows = [{"point": i + 1, "underlying.volatility": v, "market.discount_rate": d,
+             "expanded_npv": 10 + v - d, "static_npv": 5.0, "flexibility_value": 5 + v - d,
+             "decision_today": "wait: keep the right to invest" if v > 0.3 else "invest now"}
+            for i, (v, d) in enumerate((v, d) for v in (0.2, 0.3, 0.4) for d in (0.05, 0.07))]
+    pd.DataFrame(rows).to_parquet(folder / "sweep.parquet")
+    (folder / ".realopt-sweep").write_text(json.dumps({
+        "file": "x.yaml", "vary": [["underlying.volatility", ["0.2", "0.3", "0.4"]],
+                                   ["market.discount_rate", ["0.05", "0.07"]]]}))
+    chart = sweep_chart(folder)
+    assert chart.slug == "sweep" and "6 points" in chart.caption
+    png = render(chart, dpi=60, page_dpi=60)[0]
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    with pytest.raises(RealoptError, match="not a finished realopt sweep"):
+        sweep_chart(tmp_path / "nothing")

@@ -139,3 +139,49 @@ def sweep_png(df, keys, money: str = "", dpi: int = 200) -> bytes:
         buf = io.BytesIO()
         fig.savefig(buf, format="png", dpi=dpi)
     return buf.getvalue()
+
+
+# ------------------------------------------------------------------------------------------
+# A sweep's figure inside ``realopt report`` (``--sweep DIR``)
+
+SWEEP_MANIFEST = ".realopt-sweep"          # written by realopt.sweep
+
+
+def sweep_chart(folder):
+    """The figure of the finished sweep in ``folder`` as a report Chart (slug ``sweep``).
+    Raises RealoptError when the folder is not a finished sweep of one or two keys."""
+    import json
+    from pathlib import Path
+
+    import pandas as pd
+
+    from ..errors import RealoptError
+    from .figures import Chart
+
+    folder = Path(folder)
+    try:
+        manifest = json.loads((folder / SWEEP_MANIFEST).read_text(encoding="utf-8"))
+        df = pd.read_parquet(folder / "sweep.parquet")
+    except (OSError, ValueError) as err:
+        raise RealoptError(f"--sweep {folder}: not a finished realopt sweep ({err}). Fix: run "
+                           "`realopt sweep FILE --vary ... -o DIR` (or --resume it) first") \
+            from None
+    keys = [k for k, _ in manifest.get("vary", [])]
+    if len(keys) not in (1, 2) or any(k not in df.columns for k in keys):
+        raise RealoptError(f"--sweep {folder}: a figure is drawn for a sweep of one or two "
+                           f"keys; this one varies {len(keys)}")
+    src = Path(manifest.get("file", "")).name
+    if len(keys) == 1:
+        title = f"Sweep: values against {keys[0]}"
+        caption = (f"From the sweep of {src} in {folder.name}/ ({len(df)} points): expanded "
+                   f"NPV, static NPV and flexibility value at each value of {keys[0]}, every "
+                   "other input as in that file; circled points are those where the decision "
+                   "today is to wait.")
+    else:
+        title = f"Sweep: expanded NPV over {keys[0]} and {keys[1]}"
+        caption = (f"From the sweep of {src} in {folder.name}/ ({len(df)} points): expanded "
+                   f"NPV at each pair of values; the outlined line separates the points where "
+                   "the decision today is to invest now from those where it is to wait (W).")
+    return Chart("sweep", title, caption, 3.6 if len(keys) == 1 else 4.4,
+                 lambda fig: (draw_one(fig, df, keys[0]) if len(keys) == 1
+                              else draw_two(fig, df, keys)))
