@@ -404,7 +404,9 @@ def build_parser() -> argparse.ArgumentParser:
               appraise  print the static NPV, the value of each right, the expanded NPV and
                         when to use each right
               report    write the decision-paper report (HTML, PDF, Markdown, JSON, CSV,
-                        figures) to a folder"""),
+                        figures) to a folder
+              sweep     appraise over a grid of --set values, in parallel on Dask
+              portfolio appraise several projects; choose what to commit within a budget"""),
         epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
