@@ -239,7 +239,7 @@ def dask_cluster(tmp_path_factory):
                 p.terminate()
         for p in procs:
             try:
-                p.wait(10)
+                p.wait(3)
             except subprocess.TimeoutExpired:
                 p.kill()
                 p.wait(10)
