@@ -95,9 +95,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None, tasks:
     import dask
     from distributed import Client
 
-    with dask.config.set({"distributed.worker.daemon": False,
-                          "distributed.admin.tick.limit": "1h",
-                          "distributed.comm.timeouts.connect": f"{CONNECT_TIMEOUT:g}s"}):
+    settings = {"distributed.admin.tick.limit": "1h",
+                "distributed.comm.timeouts.connect": f"{CONNECT_TIMEOUT:g}s"}
+    if not scheduler:                      # no dashboard here, so no use for the profiler
+        settings["distributed.worker.profile.enabled"] = False
+    with dask.config.set(settings):
         cluster = None
         if scheduler:
             try:
