@@ -211,39 +211,47 @@ def manifest_for(args, varies, fixed) -> dict:
             "vary": [[v.key, list(v.values)] for v in varies]}
 
 
-def prepare_folder(out: Path, manifest: dict, resume: bool) -> None:
-    """Create ``out`` (new or empty) or accept it for --resume; refuse anything else."""
+def check_folder(out: Path, manifest: dict, resume: bool) -> bool:
+    """Refuse an output folder that is neither new, empty, nor (with --resume) an earlier run
+    of the same sweep; creates nothing. True when it holds that earlier run."""
     if out.exists() and not out.is_dir():
         raise RealoptError(f"-o {out}: this is a file, not a folder. Fix: name a new folder")
     entries = sorted(p.name for p in out.iterdir()) if out.is_dir() else []
-    if entries:
-        mpath = out / MANIFEST
-        if not mpath.is_file():
-            raise RealoptError(
-                f"-o {out}: the folder holds other files ({', '.join(entries[:3])}"
-                f"{', ...' if len(entries) > 3 else ''}) and is not a realopt sweep. Fix: name "
-                "a new or empty folder")
-        try:
-            old = json.loads(mpath.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            old = None
-        if not resume:
-            raise RealoptError(
-                f"-o {out}: the folder holds an earlier sweep. Fix: add --resume to complete "
-                "it (only missing points are computed), or name a new folder")
-        if old != manifest:
-            what = "another sweep"
-            if isinstance(old, dict):
-                if old.get("file") != manifest["file"]:
-                    what = f"a sweep of {old.get('file')}"
-                elif old.get("file_sha256") != manifest["file_sha256"]:
-                    what = "a sweep of an earlier version of the project file"
-                elif old.get("vary") != manifest["vary"]:
-                    what = "a sweep of another grid (--vary differs)"
-                else:
-                    what = "a sweep with other --set or --steps-per-year options"
-            raise RealoptError(f"-o {out}: --resume, but the folder holds {what}. Fix: run the "
-                               "same command as the earlier run, or name a new folder")
+    if not entries:
+        return False
+    mpath = out / MANIFEST
+    if not mpath.is_file():
+        raise RealoptError(
+            f"-o {out}: the folder holds other files ({', '.join(entries[:3])}"
+            f"{', ...' if len(entries) > 3 else ''}) and is not a realopt sweep. Fix: name "
+            "a new or empty folder")
+    try:
+        old = json.loads(mpath.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        old = None
+    if not resume:
+        raise RealoptError(
+            f"-o {out}: the folder holds an earlier sweep. Fix: add --resume to complete "
+            "it (only missing points are computed), or name a new folder")
+    if old != manifest:
+        what = "another sweep"
+        if isinstance(old, dict):
+            if old.get("file") != manifest["file"]:
+                what = f"a sweep of {old.get('file')}"
+            elif old.get("file_sha256") != manifest["file_sha256"]:
+                what = "a sweep of an earlier version of the project file"
+            elif old.get("vary") != manifest["vary"]:
+                what = "a sweep of another grid (--vary differs)"
+            else:
+                what = "a sweep with other --set or --steps-per-year options"
+        raise RealoptError(f"-o {out}: --resume, but the folder holds {what}. Fix: run the "
+                           "same command as the earlier run, or name a new folder")
+    return True
+
+
+def prepare_folder(out: Path, manifest: dict, resume: bool) -> None:
+    """Check the folder (:func:`check_folder`), then create it with its manifest if new."""
+    if check_folder(out, manifest, resume):
         (out / "points").mkdir(exist_ok=True)
         return
     (out / "points").mkdir(parents=True, exist_ok=True)
@@ -329,11 +337,6 @@ def table(out: Path, varies, points):
     return text, typed
 
 
-def decision_class(text) -> str:
-    """'wait' when the decision today keeps the right to invest, else 'invest now'."""
-    return "wait" if str(text or "").startswith("wait") else "invest now"
-
-
 # ------------------------------------------------------------------------------------------
 # Command
 
@@ -417,9 +420,9 @@ def run_sweep(args) -> int:
                            "fewer values per --vary")
     out = Path(args.output) if args.output else Path(f"{Path(args.file).stem}-sweep")
     manifest = manifest_for(args, varies, fixed)
-    _check_folder(out, manifest, args.resume)
+    earlier = check_folder(out, manifest, args.resume)          # before the long validation
     projects = validate_points(args, varies, points, fixed)      # before any work is sent
-    done = done_points(out, len(points)) if args.resume and (out / MANIFEST).is_file() else set()
+    done = done_points(out, len(points)) if earlier else set()
     todo = [i for i in range(len(points)) if i not in done]
     computed, duplicates, failed = 0, 0, []
 
@@ -460,16 +463,9 @@ def run_sweep(args) -> int:
     figure = _figure(out, varies, typed)
     _out(f"{args.file}: {len(points)} points ({computed} computed now, {len(done)} from an "
          f"earlier run) in {out}/: sweep.csv, sweep.parquet, points/"
-         + (f", {figure}" if figure else "")
+         + (f", {figure}" if figure else " (a figure is drawn for one or two varied keys)")
          + (f"; {duplicates} duplicate results ignored" if duplicates else ""))
     return 0
-
-
-def _check_folder(out, manifest, resume):
-    """Refuse a bad output folder before the (possibly long) validation."""
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        if not (out / MANIFEST).is_file() or not resume:
-            prepare_folder(out, manifest, resume)     # raises the right message
 
 
 def _write_parquet(path: Path, df) -> None:

@@ -126,6 +126,26 @@ def test_output_folder_holding_something_else_is_refused(cli, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.txt"]
 
 
+def test_resume_refuses_a_folder_of_another_sweep(cli, tmp_path, minimal_project_text):
+    import argparse
+
+    from realopt.sweep import manifest_for, prepare_folder
+
+    path = tmp_path / "p.yaml"
+    path.write_text(minimal_project_text)
+    out = tmp_path / "s"
+    args = argparse.Namespace(file=str(path), steps_per_year=None)
+    varies = [parse_vary("underlying.volatility=0.2,0.3")]
+    prepare_folder(out, manifest_for(args, varies, []), resume=False)
+    argv = ["sweep", path, "--vary", "underlying.volatility=0.2,0.3", "-o", out, "--resume"]
+    r = cli(*argv[:3], "underlying.volatility=0.2,0.4", *argv[4:])
+    assert r.code == 1 and "another grid" in r.err
+    path.write_text(minimal_project_text.replace("0.25", "0.26"))
+    r = cli(*argv)
+    assert r.code == 1 and "earlier version of the project file" in r.err
+    assert sorted(p.name for p in (out / "points").iterdir()) == []
+
+
 def test_unreachable_scheduler_fails_fast_with_a_clear_message(cli, tmp_path):
     import socket
 
