@@ -19,9 +19,9 @@ With a budget, :func:`choose` finds the decisions (one per project) that maximis
 values while the sum of today's outlays stays within the budget: a multiple-choice knapsack solved
 exactly on the real outlays (no rounding of money: each amount is taken as the shortest decimal
 that reads back as its float, i.e. as written in the file, and sums are exact rationals, so
-outlays of 0.1 and 0.2 fit a budget of 0.3) by dynamic programming over the Pareto frontier of (outlay, value) of partial choices
-(Nemhauser & Ullmann 1969), which keeps every undominated partial choice, so the optimum is never
-pruned. The value given up by the budget is the unconstrained optimum minus the budgeted one.
+outlays of 0.1 and 0.2 fit a budget of 0.3) by dynamic programming over the Pareto frontier of
+(outlay, value) of partial choices (Nemhauser & Ullmann 1969), which keeps every undominated
+partial choice, so the optimum is never pruned. The value given up by the budget is the unconstrained optimum minus the budgeted one.
 """
 from __future__ import annotations
 
@@ -29,7 +29,6 @@ import argparse
 import json
 import textwrap
 from dataclasses import dataclass
-from fractions import Fraction
 from pathlib import Path
 
 from .errors import ProjectError, RealoptError, ValuationError
@@ -98,8 +97,11 @@ def options(commit_value: float, keep_value: float | None, outlay: float) -> tup
     return tuple(out)
 
 
-def _exact(x: float) -> Fraction:
-    """The amount as the shortest decimal that reads back as the float ``x``, exactly."""
+def _exact(x: float):
+    """The amount as the shortest decimal that reads back as the float ``x``, exactly (a
+    Fraction)."""
+    from fractions import Fraction
+
     return Fraction(repr(float(x)))
 
 
@@ -111,7 +113,7 @@ def choose(groups, budget: float | None):
     always exists (pass)."""
     cap = None if budget is None else _exact(budget)
     # frontier: list of (outlay, value, choice tuple), outlay ascending and value strictly rising
-    frontier = [(Fraction(0), Fraction(0), ())]
+    frontier = [(_exact(0.0), _exact(0.0), ())]
     for opts in groups:
         cand = []
         for w, v, ch in frontier:
@@ -138,10 +140,10 @@ def brute_force(groups, budget: float | None):
     cap = None if budget is None else _exact(budget)
     best = None
     for ch in itertools.product(*(range(len(g)) for g in groups)):
-        w = sum((_exact(g[k].outlay) for g, k in zip(groups, ch)), Fraction(0))
+        w = sum((_exact(g[k].outlay) for g, k in zip(groups, ch)), _exact(0.0))
         if cap is not None and w > cap:
             continue
-        v = sum((_exact(g[k].value) for g, k in zip(groups, ch)), Fraction(0))
+        v = sum((_exact(g[k].value) for g, k in zip(groups, ch)), _exact(0.0))
         key = (v, -w)
         if best is None or key > best[0]:
             best = (key, list(ch), v, w)
@@ -316,8 +318,8 @@ def run_portfolio(args) -> int:
     write_atomic(out / "portfolio.html", html_summary(df, totals, money, notes))
     line = f"{len(df)} projects in {out}/: portfolio.csv, portfolio.md, portfolio.html"
     if args.budget is not None:
-        line += (f"; within the budget of {args.budget:,.2f}: value {totals['value_under_budget']:,.2f}"
-                 f" (without the budget {totals['value_without_budget']:,.2f}, given up "
+        line += (f"; within the budget of {args.budget:,.2f}: value "
+                 f"{totals['value_under_budget']:,.2f} (without the budget {totals['value_without_budget']:,.2f}, given up "
                  f"{totals['value_given_up']:,.2f})")
     _out(line)
     return 0

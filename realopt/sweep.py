@@ -24,15 +24,12 @@ refused. Registered in realopt.cli's COMMANDS as ``"realopt.sweep:register"``.
 from __future__ import annotations
 
 import argparse
-import hashlib
 import itertools
 import json
 import os
 import re
-import tempfile
 import textwrap
 from dataclasses import dataclass
-from fractions import Fraction
 from pathlib import Path
 
 from .errors import ProjectError, RealoptError, ValuationError
@@ -59,7 +56,7 @@ class Vary:
     spec: str
 
 
-def number_text(x: Fraction, whole: bool) -> str:
+def number_text(x, whole: bool) -> str:
     """Shortest text of ``x`` that the project loader reads back as the same number: a whole
     number as digits, else Python's round-trip repr of the nearest float, with a decimal point
     before any exponent (YAML reads ``1e-05`` as text, ``1.0e-05`` as a number)."""
@@ -111,6 +108,8 @@ def parse_vary(text: str) -> Vary:
                                f"more (the count of values from {a} to {b}, both included)")
         if n > MAX_POINTS:
             raise RealoptError(f"--vary {key}={spec}: N is {n:,}; at most {MAX_POINTS:,} points")
+        from fractions import Fraction
+
         fa, fb = Fraction(a), Fraction(b)
         if n == 1 and fa != fb:
             raise RealoptError(f"--vary {key}={spec}: one value cannot include both {a} and {b}. "
@@ -200,6 +199,8 @@ def validate_points(args, varies, points, fixed):
 
 
 def file_hash(path) -> str:
+    import hashlib
+
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
@@ -260,6 +261,8 @@ def prepare_folder(out: Path, manifest: dict, resume: bool) -> None:
 
 def write_atomic(path: Path, data, binary: bool = False) -> None:
     """Write ``data`` to a temp file beside ``path`` and rename it over ``path``."""
+    import tempfile
+
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.tmp-", dir=path.parent)
     try:
         os.fchmod(fd, 0o666 & ~_UMASK)

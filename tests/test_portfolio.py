@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from realopt.portfolio import (COMMIT, KEEP, PASS, Option, brute_force, choose, options,
+from realopt.portfolio import (COMMIT, KEEP, PASS, brute_force, choose, options,
                                today_choices)
 
 ROOT = Path(__file__).resolve().parents[1]

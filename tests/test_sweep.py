@@ -113,7 +113,8 @@ def test_bad_point_refused_with_its_key_value_before_anything_is_written(cli, tm
     assert "above 0" in r.err and "nothing was run" in r.err
     assert "Traceback" not in r.err and not out.exists()
     r = cli("sweep", COATING, "--vary", "underlying.volatilty=0.2:0.4:2", "-o", out)
-    assert r.code == 1 and "underlying.volatilty=0.2" in r.err and "did you mean volatility" in r.err
+    assert r.code == 1 and "underlying.volatilty=0.2" in r.err
+    assert "did you mean volatility" in r.err
     r = cli("sweep", COATING, "--vary", "lattice.steps_per_year=12:48:6", "-o", out)
     assert r.code == 1 and "lattice.steps_per_year=19.2" in r.err and "whole number" in r.err
     assert not out.exists()
