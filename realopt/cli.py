@@ -447,7 +447,7 @@ def main(argv=None) -> int:
         return exc.code if isinstance(exc.code, int) else 2
     if getattr(args, "run", None) is None:
         parser.print_usage(sys.stderr)
-        _err(f"{PROG}: error: name a command (check, appraise, report); see {PROG} --help")
+        _err(f"{PROG}: error: name a command (check, appraise, report, sweep, portfolio); see {PROG} --help")
         return 2
     try:
         return args.run(args)

@@ -119,6 +119,11 @@ def dask_client(workers: int | None = None, scheduler: str | None = None, tasks:
                     f"--scheduler {scheduler}: the scheduler has no workers (waited "
                     f"{WORKER_WAIT:g} s). Fix: start some with `dask worker {scheduler}`.") \
                     from None
+            try:
+                _check_workers(client, scheduler)
+            except BaseException:
+                client.close()
+                raise
         else:
             from distributed import LocalCluster
 
@@ -135,6 +140,37 @@ def dask_client(workers: int | None = None, scheduler: str | None = None, tasks:
             finally:
                 if cluster is not None:
                     cluster.close(timeout=10)
+
+
+def worker_version() -> str:
+    """On a worker: the realopt version it imports ('' if it cannot import realopt)."""
+    try:
+        import realopt
+    except ImportError:
+        return ""
+    return realopt.__version__
+
+
+def _check_workers(client, scheduler) -> None:
+    """Refuse a cluster whose workers lack realopt or run another version of it (their points
+    would not be this machine's appraisals)."""
+    from . import __version__
+
+    try:
+        found = client.run(worker_version)
+    except Exception as err:        # a worker that cannot even unpickle this function
+        raise RealoptError(f"--scheduler {scheduler}: the workers cannot run realopt "
+                           f"({type(err).__name__}: {_first_line(err)}). Fix: install realopt "
+                           f"{__version__} on every worker machine") from None
+    bad = {w: v for w, v in found.items() if v != __version__}
+    if bad:
+        w, v = next(iter(bad.items()))
+        raise RealoptError(
+            f"--scheduler {scheduler}: {len(bad)} of {len(found)} workers "
+            + (f"cannot import realopt (e.g. {w})" if not v else
+               f"run realopt {v} (e.g. {w}), this machine {__version__}")
+            + f". Fix: install realopt {__version__} on every worker machine, so that every "
+            "point is the appraisal this machine would make")
 
 
 def _first_line(err) -> str:

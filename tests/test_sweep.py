@@ -442,3 +442,26 @@ def test_sweep_chart_for_the_report(tmp_path):
     assert png[:8] == b"\x89PNG\r\n\x1a\n"
     with pytest.raises(RealoptError, match="not a finished realopt sweep"):
         sweep_chart(tmp_path / "nothing")
+
+
+def test_a_cluster_with_another_realopt_is_refused():
+    import realopt
+    from realopt.fanout import _check_workers
+
+    class FakeClient:
+        def __init__(self, found):
+            self.found = found
+
+        def run(self, func):
+            if isinstance(self.found, Exception):
+                raise self.found
+            return self.found
+
+    _check_workers(FakeClient({"tcp://a:1": realopt.__version__}), "tcp://s:1")    # fine
+    with pytest.raises(RealoptError, match="run realopt 0.0.1"):
+        _check_workers(FakeClient({"tcp://a:1": realopt.__version__, "tcp://b:1": "0.0.1"}),
+                       "tcp://s:1")
+    with pytest.raises(RealoptError, match="cannot import realopt"):
+        _check_workers(FakeClient({"tcp://a:1": ""}), "tcp://s:1")
+    with pytest.raises(RealoptError, match="cannot run realopt"):
+        _check_workers(FakeClient(ModuleNotFoundError("No module named 'realopt'")), "tcp://s:1")
