@@ -19,6 +19,7 @@ import math
 import os
 import sys
 import time
+import uuid
 from contextlib import contextmanager
 from dataclasses import replace
 
@@ -188,7 +189,7 @@ def run_all(client, func, items, on_result, label: str = "points", quiet: bool =
     items = list(items)
     bar = Progress(len(items), label, quiet=quiet)
     futures, keys = [], {}
-    stamp = f"{os.getpid()}-{time.monotonic_ns()}"
+    stamp = uuid.uuid4().hex[:12]            # task keys unique on a shared scheduler
     for key, item in items:
         fut = client.submit(func, item, key=f"realopt-{label}-{stamp}-{key}", pure=False)
         futures.append(fut)

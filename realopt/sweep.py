@@ -457,7 +457,8 @@ def run_sweep(args) -> int:
         prepare_folder(out, manifest, args.resume)
     if failed:
         head = (f"{args.file}: {len(failed)} point{'s' if len(failed) != 1 else ''} could not "
-                f"be valued ({len(points) - len(failed)} are in {out}/points):")
+                f"be valued ({len(done) + computed} of {len(points)} are in {out}/points; "
+                "--resume retries the others):")
         body = [f"point {label}:\n" + textwrap.indent(msg, "    ") for label, msg in failed[:5]]
         raise RealoptError("\n".join([head] + body))
     text, typed = table(out, varies, points)
