@@ -297,8 +297,6 @@ def run_portfolio(args) -> int:
             failed.append(f"{args.files[i]}: {payload}")
 
     with dask_client(args.workers, args.scheduler, tasks=len(projects)) as client:
-        from .portfolio import worker_item
-
         run_all(client, worker_item, enumerate(projects), arrived, label="projects",
                 quiet=args.quiet)
     if failed:
