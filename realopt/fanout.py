@@ -130,11 +130,15 @@ def dask_client(workers: int | None = None, scheduler: str | None = None, tasks:
 
             n = workers or default_workers(tasks)
             cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                   dashboard_address=None, silence_logs=logging.ERROR,
+                                   dashboard_address=None, silence_logs=logging.CRITICAL,
                                    host="127.0.0.1")
             client = Client(cluster)
         try:
             yield client
+        except BaseException:
+            # stopping early (Ctrl-C, an error): the shutdown's own complaints are noise
+            logging.getLogger("distributed").setLevel(logging.CRITICAL)
+            raise
         finally:
             try:
                 client.close(timeout=10)

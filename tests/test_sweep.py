@@ -367,7 +367,7 @@ def test_interrupted_local_sweep_resumes_computing_only_missing_points(tmp_path)
             proc.kill()
             proc.wait()
     assert proc.returncode == 130, stderr
-    assert "--resume" in stderr and "Traceback" not in stderr
+    assert "--resume" in stderr and "Traceback" not in stderr, stderr
     have = len(_points(out))
     assert 0 < have < 12
     assert not (out / "sweep.csv").exists()
