@@ -305,6 +305,7 @@ class Solution:
     policy: Policy | None
     grid: Grid
     graph: StateGraph
+    carry: np.ndarray | None = None   # (states,) carry-on value at t = 0, before today's choice
 
 
 def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
@@ -388,6 +389,8 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         late = grid.late_share(i)
         if late:                                   # the terminal value, paid after decisions
             H += scales * (grid.nodes(i) * late)[None, :]
+        if i == 0:
+            carry0 = H[:, 0].copy()                # each state's carry-on value today
         invested_edges, commits = per_step[i]
         if invested_edges or commits:
             recording = record and (i == 0 or not today_only)
@@ -426,7 +429,9 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
-    return Solution(values=values, policy=policy, grid=grid, graph=graph)
+    carry = np.zeros(len(graph.states))
+    carry[live] = carry0
+    return Solution(values=values, policy=policy, grid=grid, graph=graph, carry=carry)
 
 
 def occupancy(sol: Solution, p: float, absorb=()):

@@ -152,6 +152,9 @@ class VolatilityEstimate:
     file: str | None = None          # absolute path (resolved by the loader)
     column: str | None = None
     periods_per_year: float | None = None
+    # history: (sigma, standard error) already read from ``file`` (set by realopt.fanout before a
+    # project is sent to Dask workers, which need no access to the file); None = read the file
+    resolved: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)

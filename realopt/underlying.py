@@ -157,7 +157,8 @@ def _resolve(underlying: Underlying, market: Market) -> ResolvedUnderlying:
     if est is not None and est.method == "history":
         from . import drivers
 
-        vol, stderr = drivers.history_volatility(est.file, est.column, est.periods_per_year)
+        vol, stderr = est.resolved or drivers.history_volatility(est.file, est.column,
+                                                                 est.periods_per_year)
         method = (f"history: annualised standard deviation of log returns of '{est.column}' "
                   f"in {est.file} ({est.periods_per_year:g} periods a year)")
     if underlying.present_value is not None and not flows:
