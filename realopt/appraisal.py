@@ -19,7 +19,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from . import CAUTION
+from . import CAUTION, validate
 from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project, Switch
@@ -262,7 +262,11 @@ def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, flo
 
 
 def appraise(project: Project) -> Appraisal:
-    """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
+    """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
+
+    A project built in Python is checked against the model's rules first (realopt.validate):
+    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get."""
+    validate.check(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "

@@ -2,7 +2,9 @@
 problem (see the package docstring for the order)."""
 from __future__ import annotations
 
-from .. import model
+from dataclasses import replace
+
+from .. import model, validate
 from ..errors import ProjectError
 from .crosschecks import CrossChecks
 from .drivers_section import DriverSections
@@ -42,9 +44,15 @@ class _Builder(MarketSections, UnderlyingSection, DriverSections, RightsSection,
         rights = self.rights(sec["rights"], lattice)
         if self.problems:
             raise ProjectError(sorted(self.problems, key=lambda p: (p.line or 0, p.column or 0)))
+        project = model.Project(name=name, market=market, underlying=underlying,
+                                investment=investment, rights=rights, lattice=lattice,
+                                currency=currency, unit=unit, source=self.file)
+        # the model's own rules (realopt.validate), located in the file; the sections read the
+        # same rules, so this finds nothing unless a section forgot one
+        for issue in validate.issues(project):
+            self.bad(issue.path, issue.found, issue.expected, issue.fix)
+        if self.problems:
+            raise ProjectError(sorted(self.problems, key=lambda p: (p.line or 0, p.column or 0)))
         self.cross_checks(market, underlying, investment, rights, lattice)
-        return model.Project(name=name, market=market, underlying=underlying,
-                             investment=investment, rights=rights, lattice=lattice,
-                             currency=currency, unit=unit, source=self.file,
-                             warnings=tuple(self.warnings))
+        return replace(project, warnings=tuple(self.warnings))
 

@@ -6,7 +6,7 @@ import difflib
 import keyword
 import re
 
-from .. import model
+from .. import model, validate
 from .paths import Index, describe
 from .primitives import _optional_module
 
@@ -27,9 +27,9 @@ class DriverSections:
         years = None
         y = d["years"]
         if isinstance(y, list) and len(y) == 2:
-            a = self.integer(path + ("years", Index(0)), y[0], "the first cash-flow year, 1 or "
-                             "later", ge=1)
-            b = self.integer(path + ("years", Index(1)), y[1], "the last cash-flow year", ge=1)
+            first, last = validate.YEARS
+            a = self.integer(path + ("years", Index(0)), y[0], first.expected, **first.bounds)
+            b = self.integer(path + ("years", Index(1)), y[1], last.expected, **last.bounds)
             if a is not None and b is not None:
                 if a > b:
                     self.bad(path + ("years",), f"[{a}, {b}]", "[first, last] with first <= last",
@@ -43,8 +43,7 @@ class DriverSections:
         corr = self.correlation(path + ("correlation",), d.get("correlation"), names)
         tax = 0.0
         if d.get("tax_rate") is not None:
-            tax = self.number(path + ("tax_rate",), d["tax_rate"], "a tax rate from 0 up to 1 "
-                              "(0.25 for 25%)", ge=0.0, lt=1.0)
+            tax = self.field(path + ("tax_rate",), d["tax_rate"], model.DriverModel, "tax_rate")
         formula = self.formula(path + ("cash_flow",), d["cash_flow"], names)
         if None in (years, drivers, corr, tax, formula):
             return None
@@ -86,7 +85,7 @@ class DriverSections:
         if "process" not in spec:
             self.missing(path + ("process",), "process: gbm or mean_reverting (or a schedule:)")
             return None
-        proc = self.choice(path + ("process",), spec["process"], ("gbm", "mean_reverting"),
+        proc = self.choice(path + ("process",), spec["process"], validate._STOCHASTIC,
                            "the driver's process")
         if proc is None:
             return None
@@ -95,22 +94,15 @@ class DriverSections:
         keys = ("process",) + need + (("drift",) if proc == "gbm" else ())
         self.mapping(path, spec, keys, f"a {proc} driver")
         vals = {}
-        rules = {"start": ("today's value, above 0", {"gt": 0.0}),
-                 "volatility": ("the yearly volatility of its log, 0 or more (0.25 for 25%)",
-                                {"ge": 0.0}),
-                 "drift": ("the yearly drift of its log (real-world, 0.02 for 2%)", {}),
-                 "long_run": ("the long-run median it reverts to, above 0", {"gt": 0.0}),
-                 "speed": ("the yearly speed of mean reversion, 0 or more", {"ge": 0.0})}
         for k in keys[1:]:
-            what, bounds = rules[k]
             if k not in spec:
                 if k == "drift":
                     vals[k] = 0.0
                     continue
-                self.missing(path + (k,), what)
+                self.missing(path + (k,), validate.rule_for(model.Driver, k).expected)
                 vals[k] = None
                 continue
-            vals[k] = self.number(path + (k,), spec[k], what, **bounds)
+            vals[k] = self.field(path + (k,), spec[k], model.Driver, k)
         if any(v is None for v in vals.values()):
             return None
         return model.Driver(name=name, process=proc, **vals)
@@ -139,7 +131,7 @@ class DriverSections:
                              + ", ".join(stochastic) + ")",
                              f"did you mean {hint[0]}?" if hint else "")
                     ok = False
-            r = self.number(p + (Index(2),), rho, "a correlation from -1 to 1", ge=-1.0, le=1.0)
+            r = self.number(p + (Index(2),), rho, validate.RHO.expected, **validate.RHO.bounds)
             if a == b:
                 self.bad(p, f"{a} paired with itself", "two different drivers")
                 ok = False
@@ -152,17 +144,10 @@ class DriverSections:
                 ok = False
             else:
                 out.append((str(a), str(b), r))
-        idx = {n: i for i, n in enumerate(stochastic)}
-        if ok and out and all(a in idx and b in idx for a, b, _ in out):
-            import numpy as np
-
-            m = np.eye(len(stochastic))
-            for a, b, r in out:
-                m[idx[a], idx[b]] = m[idx[b], idx[a]] = r
-            if np.linalg.eigvalsh(m).min() < -1e-10:
-                self.bad(path, "correlations that no set of drivers can have together (the "
-                         "matrix is not positive semi-definite)", "a consistent set of "
-                         "correlations", "lower the largest correlations in absolute value")
+        if ok and out and all(a in stochastic and b in stochastic for a, b, _ in out):
+            bad = validate.correlation_problem(stochastic, out)
+            if bad is not None:
+                self.bad(path, *bad)        # names the factor that makes the set consistent
                 ok = False
         return tuple(out) if ok else None
 

@@ -2,7 +2,7 @@
 investment, which the cross-checks value with the market)."""
 from __future__ import annotations
 
-from .. import model
+from .. import model, validate
 from .keys import LATTICE_KEYS, MARKET_KEYS, PROJECT_KEYS, RATE_WARN
 from .primitives import _ABSENT
 
@@ -36,19 +36,16 @@ class MarketSections:
             return None
         comp = "annual"
         if d.get("compounding") is not None:
-            comp = self.choice(path + ("compounding",), d["compounding"], model.COMPOUNDING,
-                               "how the rates compound")
+            comp = self.field(path + ("compounding",), d["compounding"], model.Market,
+                              "compounding")
         rates = {}
-        for key, what in (("risk_free_rate", "the yearly risk-free rate"),
-                          ("discount_rate", "the yearly risk-adjusted discount rate for the "
-                           "project's cash flows")):
+        for key in ("risk_free_rate", "discount_rate"):
             if key not in d:
                 if key == "discount_rate" and form == "present_value":
                     continue
-                self.missing(path + (key,), f"{what}, a fraction above -1 (0.035 for 3.5%)")
+                self.missing(path + (key,), validate.rule_for(model.Market, key).expected)
                 continue
-            r = self.number(path + (key,), d[key], f"{what}, a fraction above -1 (0.035 for 3.5%)",
-                            gt=-1.0)
+            r = self.field(path + (key,), d[key], model.Market, key)
             if r is not None and r > RATE_WARN:
                 self.warn(path + (key,), f"{r:g} is a rate above 100% a year; if you meant "
                           f"{r:g}%, write {r / 100:g}")
@@ -82,19 +79,15 @@ class MarketSections:
                                                "down": "the down factor per step, from 0 to 1",
                                                "step_years": "the length of a step in years"}[k],
                                  "explicit trees need up, down and step_years together")
-            up = self.number(path + ("up",), d.get("up"), "the up factor per step, above 1",
-                             gt=1.0) if "up" in d else None
-            down = self.number(path + ("down",), d.get("down"), "the down factor per step, "
-                               "above 0 and below 1", gt=0.0, lt=1.0) if "down" in d else None
-            dt = self.number(path + ("step_years",), d.get("step_years"), "the length of one "
-                             "step in years, above 0", gt=0.0) if "step_years" in d else None
+            up, down, dt = (self.field(path + (k,), d[k], model.LatticeSpec, k) if k in d
+                            else None for k in ("up", "down", "step_years"))
             if None in (up, down, dt):
                 return None
             return model.LatticeSpec(up=up, down=down, step_years=dt)
         spy = 12
         if "steps_per_year" in d:
-            spy = self.integer(path + ("steps_per_year",), d["steps_per_year"],
-                               "a whole number of steps per year, 1 or more (12 = monthly)", ge=1)
+            spy = self.field(path + ("steps_per_year",), d["steps_per_year"], model.LatticeSpec,
+                             "steps_per_year")
         return model.LatticeSpec(steps_per_year=spy) if spy is not None else None
 
     def investment(self, value, market):

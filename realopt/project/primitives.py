@@ -8,7 +8,7 @@ import importlib
 import math
 from pathlib import Path
 
-from .. import model
+from .. import model, validate
 from ..errors import Problem
 from .paths import Index, _float_text, describe, format_path
 from .reading import Tree
@@ -105,48 +105,30 @@ class Primitives:
 
     def number(self, path, value, expected, *, gt=None, ge=None, lt=None, le=None, fix=""):
         """A finite number within the given bounds (returns float), else None and a problem."""
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            self._not_a_number(path, value, expected, fix)
+        bad = validate.number_problem(value, expected, gt=gt, ge=ge, lt=lt, le=le, fix=fix)
+        if bad is not None:
+            self.bad(path, *bad)
             return None
-        v = float(value)
-        if not math.isfinite(v):
-            self.bad(path, describe(v), expected, "replace .inf / .nan with a figure")
-            return None
-        if ((gt is not None and not v > gt) or (ge is not None and not v >= ge)
-                or (lt is not None and not v < lt) or (le is not None and not v <= le)):
-            self.bad(path, describe(value), expected, fix)
-            return None
-        return v
-
-    def _not_a_number(self, path, value, expected, fix):
-        found = describe(value)
-        if isinstance(value, str):
-            s = value.strip().replace(" ", "")
-            pct = _float_text(s[:-1]) if s.endswith("%") else None
-            if pct is not None:
-                found = f'"{value}" (a percentage)'
-                fix = f"write a fraction without the percent sign: {pct / 100:g}"
-            elif _float_text(s) is not None:
-                found = f'the text "{value}" (a number in quotes)'
-                fix = "remove the quotes so it reads as a number"
-            elif "," in s and _float_text(s.replace(",", "")) is not None:
-                fix = "write digits with a dot for decimals, without thousands separators"
-            elif not fix:
-                fix = "write a plain number, e.g. 0.25"
-        elif isinstance(value, bool) and not fix:
-            fix = "write a number; true/false (and yes/no/on/off) are yes/no values in YAML"
-        elif value is None and not fix:
-            fix = "give a number after the colon"
-        self.bad(path, found, expected, fix)
+        return float(value)
 
     def integer(self, path, value, expected, *, ge=None, le=None):
-        v = self.number(path, value, expected, ge=ge, le=le)
-        if v is None:
+        bad = validate.integer_problem(value, expected, ge=ge, le=le)
+        if bad is not None:
+            self.bad(path, *bad)
             return None
-        if not v.is_integer():
-            self.bad(path, describe(value), expected, f"use a whole number such as {round(v)}")
-            return None
-        return int(v)
+        return int(value)
+
+    def field(self, path, value, cls, name, **override):
+        """Read ``value`` by the rule of ``cls.name`` in realopt.validate.RULES (the same bounds,
+        wording and fix as a project built in Python gets)."""
+        rule = validate.rule_for(cls, name)
+        expected = override.pop("expected", rule.expected)
+        if rule.kind == "choice":
+            return self.choice(path, value, rule.choices, expected)
+        if rule.kind == "integer":
+            return self.integer(path, value, expected, **rule.bounds)
+        return self.number(path, value, expected, fix=override.pop("fix", rule.fix),
+                           **rule.bounds)
 
     def text(self, path, value, expected):
         if isinstance(value, (int, float)) and not isinstance(value, bool):
@@ -157,16 +139,11 @@ class Primitives:
         return value.strip()
 
     def choice(self, path, value, choices, what):
-        expected = f"{what}: one of {', '.join(choices)}"
-        if not isinstance(value, str):
-            self.bad(path, describe(value), expected)
+        bad = validate.choice_problem(value, choices, what)
+        if bad is not None:
+            self.bad(path, *bad)
             return None
-        v = value.strip().lower()
-        if v in choices:
-            return v
-        hint = difflib.get_close_matches(v, list(choices), n=1, cutoff=0.5)
-        self.bad(path, describe(value), expected, f"did you mean {hint[0]}?" if hint else "")
-        return None
+        return value.strip().lower()
 
     def year_key(self, path, key, *, gt=None, ge=0.0, fix=""):
         """A mapping key that is a year (number of years from now)."""

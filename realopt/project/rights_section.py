@@ -6,7 +6,7 @@ from __future__ import annotations
 import difflib
 import re
 
-from .. import model
+from .. import model, validate
 from .keys import COMMON_RIGHT_KEYS, RIGHT_KEYS
 from .paths import Index, describe
 from .primitives import _ABSENT
@@ -80,8 +80,8 @@ class RightsSection:
         window = self.window(path + ("window",), item.get("window"), "window" in item)
         exercise = "american"
         if item.get("exercise") is not None:
-            exercise = self.choice(path + ("exercise",), item["exercise"], model.EXERCISE,
-                                   "when the right can be used")
+            exercise = self.field(path + ("exercise",), item["exercise"], model.Right,
+                                  "exercise")
         dates = self.dates(path + ("dates",), item.get("dates"), exercise, window, kind)
         requires = self.names(path + ("requires",), item.get("requires"))
         excludes = self.names(path + ("excludes",), item.get("excludes"))
@@ -100,7 +100,7 @@ class RightsSection:
                    excludes=excludes, **specific)
 
     def window(self, path, value, given):
-        expected = "[start, end] in years from now, 0 <= start <= end (both inclusive)"
+        expected = validate.WINDOW_EXPECTED
         if not given:
             self.missing(path, expected, "add e.g. window: [0, 5]")
             return None
@@ -110,10 +110,9 @@ class RightsSection:
         if not isinstance(value, list) or len(value) != 2:
             self.bad(path, describe(value), expected)
             return None
-        a = self.number(path + (Index(0),), value[0], "the window's start, a year 0 or later",
-                        ge=0.0)
-        b = self.number(path + (Index(1),), value[1], "the window's end, a year 0 or later",
-                        ge=0.0)
+        start, end = validate.WINDOW_ENDS
+        a = self.number(path + (Index(0),), value[0], start.expected, **start.bounds)
+        b = self.number(path + (Index(1),), value[1], end.expected, **end.bounds)
         if a is None or b is None:
             return None
         if a > b:
@@ -142,8 +141,7 @@ class RightsSection:
             return None
         out, ok = [], True
         for i, v in enumerate(value):
-            d = self.number(path + (Index(i),), v, "an exercise date (years from now), 0 or later",
-                            ge=0.0)
+            d = self.number(path + (Index(i),), v, validate.DATE.expected, **validate.DATE.bounds)
             if d is None:
                 ok = False
                 continue

@@ -59,24 +59,19 @@ class UnderlyingSection:
         if form == "cash_flows":
             out["cash_flows"] = self.cash_flows(path + ("cash_flows",), d["cash_flows"])
         elif form == "present_value":
-            out["present_value"] = self.number(
-                path + ("present_value",), d["present_value"],
-                "the present value of the operating project, above 0", gt=0.0)
+            out["present_value"] = self.field(path + ("present_value",), d["present_value"],
+                                              model.Underlying, "present_value")
             if d.get("payout_yield") is not None:
-                out["payout_yield"] = self.number(
-                    path + ("payout_yield",), d["payout_yield"],
-                    "a continuous yearly payout yield from 0 up to 1 (0.02 for 2%)", ge=0.0, lt=1.0)
+                out["payout_yield"] = self.field(path + ("payout_yield",), d["payout_yield"],
+                                                 model.Underlying, "payout_yield")
         else:
             out["drivers"] = self.driver_model(path, d)
         if d.get("terminal_value") is not None and "terminal_value" in allowed:
-            out["terminal_value"] = self.number(
-                path + ("terminal_value",), d["terminal_value"],
-                "the value at the last cash-flow year of the flows beyond it (a number)")
+            out["terminal_value"] = self.field(path + ("terminal_value",), d["terminal_value"],
+                                               model.Underlying, "terminal_value")
         if d.get("flow_timing") is not None and "flow_timing" in allowed:
-            out["flow_timing"] = self.choice(
-                path + ("flow_timing",), d["flow_timing"], model.FLOW_TIMING,
-                "when the yearly cash flows are received (at_dates: each at its date; spread: "
-                "evenly over the period before it)")
+            out["flow_timing"] = self.field(path + ("flow_timing",), d["flow_timing"],
+                                            model.Underlying, "flow_timing")
         vol_path = path + ("volatility",)
         explicit = lattice is not None and lattice.explicit
         if "volatility" not in d or d["volatility"] is None:
@@ -89,10 +84,7 @@ class UnderlyingSection:
             if explicit:
                 self.warn(vol_path, "ignored: the lattice's explicit up/down factors set the tree")
         else:
-            vol = self.number(vol_path, d["volatility"], "the yearly volatility of ln(project "
-                              "value), above 0 (0.28 for 28%)", gt=0.0,
-                              fix="volatility is a spread, never negative or zero; "
-                                  "write e.g. 0.28")
+            vol = self.field(vol_path, d["volatility"], model.Underlying, "volatility")
             out["volatility"] = vol
             if vol is not None and vol > VOLATILITY_WARN:
                 self.warn(vol_path, f"a volatility of {vol:g} ({vol:.0%} a year) is very high for "
@@ -167,7 +159,7 @@ class UnderlyingSection:
         if "estimate" not in d:
             self.missing(path + ("estimate",), "estimate: simulation or estimate: history")
             return None
-        method = self.choice(path + ("estimate",), method, tuple(keys), "how to estimate it")
+        method = self.field(path + ("estimate",), method, model.VolatilityEstimate, "method")
         if method is None:
             return None
         self.mapping(path, d, keys[method], f"an estimate block for {method}")
@@ -176,11 +168,9 @@ class UnderlyingSection:
                 self.bad(path + ("estimate",), "estimate: simulation without drivers",
                          "simulation only when the cash flows come from drivers",
                          "give a volatility number, or use estimate: history with a price file")
-            paths = self.integer(path + ("paths",), d.get("paths", 20000),
-                                 "a number of simulation paths from 100 to 10,000,000",
-                                 ge=100, le=10_000_000)
-            seed = self.integer(path + ("seed",), d.get("seed", 1), "a whole-number seed, 0 or "
-                                "more", ge=0)
+            paths = self.field(path + ("paths",), d.get("paths", 20000),
+                               model.VolatilityEstimate, "paths")
+            seed = self.field(path + ("seed",), d.get("seed", 1), model.VolatilityEstimate, "seed")
             if paths is None or seed is None:
                 return None
             return model.VolatilityEstimate(method="simulation", paths=paths, seed=seed)
@@ -192,9 +182,9 @@ class UnderlyingSection:
         file = self.resolve(path + ("file",), d["file"]) if "file" in d else None
         column = self.text(path + ("column",), d["column"], "a column name") \
             if "column" in d else None
-        ppy = self.number(path + ("periods_per_year",), d["periods_per_year"],
-                          "observations per year, above 0 (12 for monthly, 52 for weekly)",
-                          gt=0.0) if "periods_per_year" in d else None
+        ppy = self.field(path + ("periods_per_year",), d["periods_per_year"],
+                         model.VolatilityEstimate, "periods_per_year") \
+            if "periods_per_year" in d else None
         if file is None or column is None or ppy is None:
             return None
         return model.VolatilityEstimate(method="history", file=str(file), column=column,
