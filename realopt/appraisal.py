@@ -279,14 +279,13 @@ def appraise(project: Project) -> Appraisal:
                   for n in names}
     flex = full - val.static_npv
     grid = val.grid
-    rn_state, rn_ex = occupancy(sol, grid.probability)
-    rw_state, rw_ex = occupancy(sol, grid.real_probability)
     sample = _sample_steps(grid.steps)
+    # both measures in one forward pass: [0] risk-neutral, [1] real-world
+    occ = occupancy(sol, (grid.probability, grid.real_probability), at=sample)
     fmt = _money_format(project)
     v0 = val.res.present_value
     rights = tuple(
-        _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
-                     (rw_state, rw_ex), sample, fmt, v0)
+        _right_value(r, graph, sol, shares[r.name], standalone[r.name], occ, sample, fmt, v0)
         for r in val.rights)
     headline = structure_warnings(graph, val.res.last_flow_year, grid.horizon,
                                   terminal_value=val.res.terminal_value)
@@ -420,11 +419,12 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
         e = graph.edges[e_id]
         label = e.label if e.kind == "switch" else e.kind
         open_at = exercise_steps(grid, rights[e.right])
+        times = grid.times.tolist()
         for i in steps:
             i = int(i)
             if not open_at[i]:
                 continue
-            year = float(grid.times[i])
+            year = times[i]
             g = pol.gains.get((state, i, e_id))
             if g is None:
                 out.append(Threshold(year, label_of, label, None, None, never=True))
@@ -432,20 +432,21 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
             lo, hi = g[0], g[1]
             smooth = (state, i + 1, e_id) in pol.gains
             lower = upper = None
-            if lo > 0 or hi < i:
-                v = grid.nodes_ex(i)
-                if lo > 0:
-                    lower = _crossing(v[lo - 2] if lo > 1 else None, v[lo - 1], v[lo],
-                                      g[2], g[3], g[4], smooth)
-                if hi < i:
-                    upper = _crossing(v[hi + 2] if hi + 2 <= i else None, v[hi + 1], v[hi],
-                                      g[7], g[6], g[5], smooth)
+            if lo > 0:
+                v = grid.nodes_ex_at(i, (max(lo - 2, 0), lo - 1, lo))
+                lower = _crossing(v[0] if lo > 1 else None, v[1], v[2], g[2], g[3], g[4], smooth)
+            if hi < i:
+                v = grid.nodes_ex_at(i, (min(hi + 2, i), hi + 1, hi))
+                upper = _crossing(v[0] if hi + 2 <= i else None, v[1], v[2], g[7], g[6], g[5],
+                                  smooth)
             out.append(Threshold(year, label_of, label, lower, upper))
     out.sort(key=lambda t: t.year)
     return out
 
 
-def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightValue:
+def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValue:
+    """``occ``: (state_prob at ``sample``, exercised at every step), each with a leading axis
+    of the two measures (risk-neutral, real-world)."""
     grid = sol.grid
     edge_ids = [k for k, e in enumerate(graph.edges) if e.right == r.name]
     prim = _primary_states(r, graph)
@@ -456,11 +457,10 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
     mode_shares = None
     if isinstance(r, Switch):
         # first moves out of the start mode: a forward pass that drops the paths once they move
-        first = set(edge_ids)
-        rn_use = np.cumsum(occupancy(sol, grid.probability, absorb=first)[1][:, edge_ids].sum(
-            axis=1))
-        rw_use = np.cumsum(occupancy(sol, grid.real_probability, absorb=first)[1][
-            :, edge_ids].sum(axis=1))
+        first = occupancy(sol, (grid.probability, grid.real_probability),
+                          absorb=set(edge_ids), at=())[1]
+        rn_use = np.cumsum(first[0][:, edge_ids].sum(axis=1))
+        rw_use = np.cumsum(first[1][:, edge_ids].sum(axis=1))
         switches = [s for s in graph.rights if isinstance(s, Switch)]
         k = switches.index(r)
         mode_shares = {}
@@ -468,14 +468,14 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
             cols = [i for i, s in enumerate(graph.states)
                     if not s.abandoned and s.invested and s.modes[k] == m.name]
             mode_shares[m.name] = tuple(
-                tuple(float(min(1.0, max(0.0, x))) for x in occ[0][:, cols].sum(axis=1)[sample])
-                for occ in (rn, rw))
+                tuple(float(min(1.0, max(0.0, x))) for x in prob[:, cols].sum(axis=1))
+                for prob in occ[0])
         measure = (f"chance of having switched out of '{r.start}' at least once by each date "
                    "(never falls); the mode shares are the chance of being in each mode at "
                    "each date (the project invested and not abandoned)")
     else:
-        rn_use = np.cumsum(rn[1][:, edge_ids].sum(axis=1))
-        rw_use = np.cumsum(rw[1][:, edge_ids].sum(axis=1))
+        rn_use = np.cumsum(occ[1][0][:, edge_ids].sum(axis=1))
+        rw_use = np.cumsum(occ[1][1][:, edge_ids].sum(axis=1))
         measure = "chance that the right has been exercised by each date"
     side = _side(thr)
     return RightValue(
@@ -604,12 +604,12 @@ def _bound_text(ts, fmt, once: bool = False) -> str:
 def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
     pol = sol.policy
     s0 = graph.initial
-    act = pol.actions(s0, 0)[0] if 0 in pol.runs.get(s0, {}) else 0
+    act = pol.action(s0, 0, 0)
     state = graph.states[s0]
     if not state.invested:
         if act:
             commit = graph.edges[act - 1]
-            then = pol.actions(commit.target, 0)[0] if 0 in pol.runs.get(commit.target, {}) else 0
+            then = pol.action(commit.target, 0, 0)
             also = f", and use '{graph.edges[then - 1].right}' at once" if then else ""
             return f"invest now ({commit.right}){also}"
         return "wait: keep the right to invest, do not commit today"
@@ -628,8 +628,8 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     hi = grid.log_v0 + 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
     values = np.exp(np.linspace(lo, hi, n_values))
     lv = np.log(values)
-    for s, runs in pol.runs.items():
-        codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
+    for s, runs in pol.moves.items():
+        codes_used = [0] + sorted({c for st in runs.values() for _, _, c in st})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
             (graph.edges[c - 1].right if graph.edges[c - 1].kind != "switch"
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
@@ -643,13 +643,15 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
             v = grid.nodes_ex(i)
             if not np.all(v > 0):
                 continue
-            logs = np.log(v)
+            logs = np.log(v[[0, -1]])        # (elementwise: the same as logs of all of v)
             step = math.log(grid.up / grid.down)
             j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_values, int)
             inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
-            act = pol.actions(s, i)
-            mapped = np.vectorize(lookup.get)(act) if act.size else act
-            codes[inside, col] = np.asarray(mapped)[j[inside]]
+            nodes = j[inside]
+            mapped = np.zeros(nodes.size, dtype=np.int16)
+            for a, b, c in runs[i]:
+                mapped[(nodes >= a) & (nodes < b)] = lookup[c]
+            codes[inside, col] = mapped
         maps.append(DecisionMap(state=graph.states[s].label, actions=tuple(labels),
                                 times=grid.times[steps], values=values, codes=codes))
     return tuple(maps)

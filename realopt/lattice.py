@@ -89,6 +89,17 @@ class Grid:
         the last cash-flow date, the terminal value still to be paid)."""
         return self.nodes(i) * self.ex_fraction(i)
 
+    @cached_property
+    def _power_list(self) -> list:
+        return self._powers.tolist()
+
+    def nodes_ex_at(self, i: int, js) -> list[float]:
+        """``nodes_ex(i)[j]`` for each j in ``js`` (the same floating point values, computed
+        for those nodes only)."""
+        base = self.log_v0 + self.log_carry[i] + i * math.log(self.down)
+        head, f, powers = math.exp(max(base, -_LOG_LIMIT)), self.ex_fraction(i), self._power_list
+        return [head * powers[j] * f for j in js]
+
     def memory_bytes(self, states: int) -> int:
         """Rough peak memory of one solve: a few slices per state plus the run-length policy."""
         return int(8 * 6 * states * (self.steps + 1) + 200 * states * (self.steps + 1))
@@ -284,19 +295,54 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
 
 @dataclass
 class Policy:
-    """Optimal action per node, run-length coded: ``runs[state][step] = (starts, codes)`` where
-    node indices starts[k] .. starts[k+1]-1 take action codes[k] (0 = carry on, e+1 = edge e).
-    Steps where the state has no choice are absent."""
+    """Optimal action per node. ``moves[state][step]`` lists the runs of nodes where a right is
+    used, ``((first, stop, code), ...)`` in node order: nodes first .. stop-1 take action code
+    (edge id + 1); every other node carries on (code 0). Steps where the state has no choice
+    are absent (a step where it has a choice and carries on everywhere holds ``()``)."""
 
-    runs: dict = field(default_factory=dict)
+    moves: dict = field(default_factory=dict)
     # (state, step, edge) -> (first, last node of its exercise region, gains over carrying on at
     # nodes first-2, first-1, first, last, last+1, last+2; None outside the slice)
     gains: dict = field(default_factory=dict)
 
+    def decides(self, state: int, step: int) -> bool:
+        """Whether ``state`` has a choice at ``step``."""
+        return step in self.moves.get(state, {})
+
     def actions(self, state: int, step: int) -> np.ndarray:
-        starts, codes = self.runs.get(state, {}).get(step, (np.array([0]), np.array([0])))
-        lengths = np.diff(np.append(starts, step + 1))
-        return np.repeat(codes, lengths)
+        """Action code of every node of ``step`` (0 where the state has no choice)."""
+        out = np.zeros(step + 1, dtype=np.int16)
+        for a, b, code in self.moves.get(state, {}).get(step, ()):
+            out[a:b] = code
+        return out
+
+    def action(self, state: int, step: int, node: int) -> int:
+        for a, b, code in self.moves.get(state, {}).get(step, ()):
+            if a <= node < b:
+                return code
+        return 0
+
+    @property
+    def runs(self) -> dict:
+        """The same policy run-length coded: ``runs[state][step] = (starts, codes)``, node
+        indices starts[k] .. starts[k+1]-1 taking codes[k]."""
+        out = {}
+        for s, steps in self.moves.items():
+            out[s] = {}
+            for i, moves in steps.items():
+                starts, codes, at = [], [], 0
+                for a, b, code in moves:
+                    if a > at:
+                        starts.append(at)
+                        codes.append(0)
+                    starts.append(a)
+                    codes.append(code)
+                    at = b
+                if at <= i or not starts:
+                    starts.append(at)
+                    codes.append(0)
+                out[s][i] = (np.array(starts), np.array(codes, dtype=np.int16))
+        return out
 
 
 @dataclass
@@ -318,29 +364,78 @@ def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
         amounts = e.sign * np.broadcast_to(np.asarray(e.amount.at(times), float), times.shape)
         tgt = rows.get(e.target, -1)
         phase = 0 if graph.states[e.source].invested else 1
-        for i in np.flatnonzero(mask):
-            per_step[i][phase].append((rows[e.source], tgt, float(amounts[i]), e_id))
+        src = rows[e.source]
+        for i, amount in zip(np.flatnonzero(mask).tolist(), amounts[mask].tolist()):
+            per_step[i][phase].append((src, tgt, amount, e_id))
     return per_step
 
 
+def _gains_around(lo: int, hi: int, i: int, gain) -> tuple:
+    """(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside nodes 0..i."""
+    def at(j):
+        return gain(j) if 0 <= j <= i else None
+    return (lo, hi, at(lo - 2), at(lo - 1), at(lo), at(hi), at(hi + 1), at(hi + 2))
+
+
 def _record(policy, i, edges, cands, act, H, live):
-    """Store the run-length codes of each deciding state and, for each edge, the gain over
-    carrying on (cand - H) at the nodes either side of its exercise region (for thresholds)."""
+    """Store the runs of each deciding state and, for each edge, the gain over carrying on
+    (cand - H) at the nodes either side of its exercise region (for thresholds)."""
+    span = {}
     for src in {e[0] for e in edges}:
         codes = act[src]
-        starts = np.concatenate([[0], np.flatnonzero(np.diff(codes)) + 1])
-        policy.runs.setdefault(live[src], {})[i] = (starts, codes[starts].copy())
+        starts = [0] + (np.flatnonzero(codes[1:] != codes[:-1]) + 1).tolist()
+        stops = starts[1:] + [i + 1]
+        runs = tuple((a, b, c) for a, b, c in zip(starts, stops, codes[starts].tolist()) if c)
+        policy.moves.setdefault(live[src], {})[i] = runs
+        for a, b, c in runs:
+            lo, hi = span.get((src, c), (a, b - 1))
+            span[(src, c)] = (min(lo, a), b - 1)
     for (src, _, _, e_id), cand in zip(edges, cands):
-        idx = np.flatnonzero(act[src] == e_id + 1)
-        if idx.size == 0:
+        region = span.get((src, e_id + 1))
+        if region is None:
             continue
-        lo, hi = int(idx[0]), int(idx[-1])
-        gain = np.broadcast_to(cand - H[src], H[src].shape)
+        carry = H[src]
+        if isinstance(cand, np.ndarray):
+            def gain(j, cand=cand, carry=carry):
+                return float(cand[j] - carry[j])
+        else:
+            def gain(j, cand=cand, carry=carry):
+                return cand - float(carry[j])
+        policy.gains[(live[src], i, e_id)] = _gains_around(region[0], region[1], i, gain)
 
-        def at(j):
-            return float(gain[j]) if 0 <= j <= i else None
-        policy.gains[(live[src], i, e_id)] = (lo, hi, at(lo - 2), at(lo - 1), at(lo),
-                                             at(hi), at(hi + 1), at(hi + 2))
+
+def _decide_scalar(h, edges, i, moves, gains, state, better):
+    """Decisions of a state whose every edge ends the project (a number received, e.g.
+    abandonment): the first edge with the largest amount wins where it beats carrying on, so
+    the exercise region is where h < that amount (one band of nodes when h grows with the
+    project value). ``moves``/``gains``: the policy's entries to fill (None: value only)."""
+    best, e_best = edges[0][2], edges[0][3]
+    for _, _, amount, e_id in edges[1:]:
+        if amount > best:
+            best, e_best = amount, e_id
+    if moves is None:
+        np.maximum(h, best, out=h)
+        return
+    np.less(h, best, out=better)
+    k = int(np.count_nonzero(better))
+    if not k:
+        moves[i] = ()
+        return
+    lo = int(better.argmax())
+    hi = i - int(better[::-1].argmax())
+    code = e_best + 1
+    if hi - lo + 1 == k:
+        moves[i] = ((lo, hi + 1, code),)
+    else:                                    # several bands (h not monotone in the value)
+        starts = [0] + (np.flatnonzero(better[1:] != better[:-1]) + 1).tolist()
+        stops = starts[1:] + [i + 1]
+        moves[i] = tuple((a, b, code) for a, b, inside in
+                         zip(starts, stops, better[starts].tolist()) if inside)
+
+    def gain(j):
+        return best - float(h[j])
+    gains[(state, i, e_best)] = _gains_around(lo, hi, i, gain)
+    np.copyto(h, best, where=better)
 
 
 def solve(grid: Grid, graph: StateGraph, record: bool = False,
@@ -368,28 +463,46 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     policy = Policy() if record else None
 
     S = len(live)
-    bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
-    tmp = np.empty((S, N + 1))
-    X = bufs[0]
-    np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
-    X += fixed * grid.fixed_beyond
-    cur = 0
     one_state = S == 1
+    # one live state: every edge ends the project (amounts are numbers, no target slice)
+    scalar = one_state and all(e[1] < 0 for es in per_step for e in es[0] + es[1])
+    if scalar:      # one row: work on 1-d slices (same arithmetic, less indexing)
+        bufs = (np.empty(N + 1), np.empty(N + 1))
+        tmp = np.empty(N + 1)
+        better = np.empty(N + 1, dtype=bool)
+        X = bufs[0]
+        np.multiply(scales[0, 0], grid.nodes(N) * (1.0 - grid.delta[N]), out=X)
+        X += fixed[0, 0] * grid.fixed_beyond
+        own_moves = policy.moves.setdefault(live[0], {}) if record else None
+    else:
+        bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
+        tmp = np.empty((S, N + 1))
+        X = bufs[0]
+        np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
+        X += fixed * grid.fixed_beyond
+    cur = 0
     for i in range(N, -1, -1):
         if i < N:
             cur ^= 1
-            H = bufs[cur][:, :i + 1]
-            np.multiply(X[:, 1:], b, out=H)
-            t = tmp[:, :i + 1]
-            np.multiply(X[:, :-1], a, out=t)
+            H = bufs[cur][..., :i + 1]
+            np.multiply(X[..., 1:], b, out=H)
+            t = tmp[..., :i + 1]
+            np.multiply(X[..., :-1], a, out=t)
             H += t
         else:
             H = X
         late = grid.late_share(i)
         if late:                                   # the terminal value, paid after decisions
-            H += scales * (grid.nodes(i) * late)[None, :]
+            if scalar:
+                H += scales[0, 0] * (grid.nodes(i) * late)
+            else:
+                H += scales * (grid.nodes(i) * late)[None, :]
         invested_edges, commits = per_step[i]
-        if invested_edges or commits:
+        if scalar and invested_edges:
+            recording = record and (i == 0 or not today_only)
+            _decide_scalar(H, invested_edges, i, own_moves if recording else None,
+                           policy.gains if recording else None, live[0], better[:i + 1])
+        elif invested_edges or commits:
             recording = record and (i == 0 or not today_only)
             if recording:
                 carry = H.copy()
@@ -401,9 +514,9 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                 cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
                 if recording:
                     for (src, _, _, e_id), cand in zip(edges, cands):
-                        better = cand > H[src]
-                        act[src][better] = e_id + 1
-                        np.copyto(H[src], cand, where=better)
+                        better_e = cand > H[src]
+                        act[src][better_e] = e_id + 1
+                        np.copyto(H[src], cand, where=better_e)
                     every += edges
                     every_cand += cands
                 else:
@@ -417,65 +530,89 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
             flow = grid.nodes(i)
             if one_state:
                 flow *= share * scales[0, 0]
-                H[0] += flow
+                if scalar:
+                    H += flow
+                else:
+                    H[0] += flow
             else:
                 flow *= share
                 H += scales * flow[None, :]
         if has_fixed and grid.fixed_weight[i]:
-            H += fixed * grid.fixed_weight[i]
+            if scalar:
+                H += fixed[0, 0] * grid.fixed_weight[i]
+            else:
+                H += fixed * grid.fixed_weight[i]
         X = H
     values = np.zeros(len(graph.states))
-    values[live] = X[:, 0]
+    values[live] = X[0] if scalar else X[:, 0]
     return Solution(values=values, policy=policy, grid=grid, graph=graph)
 
 
-def occupancy(sol: Solution, p: float, absorb=()):
+def occupancy(sol: Solution, p, absorb=(), at=None):
     """Forward pass under up-probability ``p`` with the recorded policy.
 
-    Returns (state_prob, exercised): state_prob[i, k] = chance of being in state k after the
-    decisions at step i; exercised[i, e] = chance that edge e is taken at step i. Commitments
-    move first, then the invested states' decisions (as in :func:`solve`). Mass taking an edge
-    in ``absorb`` is counted and then dropped (first uses only: e.g. a switch's first move).
+    ``p`` is one probability or a sequence of them (one pass for all: the measures are rows of
+    one array). Returns (state_prob, exercised): state_prob[m, n, k] = chance under measure m
+    of being in state k after the decisions at step ``at[n]`` (every step if ``at`` is None);
+    exercised[m, i, e] = chance that edge e is taken at step i. For a single ``p`` the leading
+    axis is left out. Commitments move first, then the invested states' decisions (as in
+    :func:`solve`). Mass taking an edge in ``absorb`` is counted and then dropped (first uses
+    only: e.g. a switch's first move).
     """
     graph, grid, pol = sol.graph, sol.grid, sol.policy
-    S, E, N = len(graph.states), len(graph.edges), grid.steps
-    state_prob = np.zeros((N + 1, S))
-    exercised = np.zeros((N + 1, E))
-    bufs = (np.zeros((S, N + 1)), np.zeros((S, N + 1)))
-    pi = bufs[0][:, :1]
-    pi[graph.initial, 0] = 1.0
-    absorbed = np.zeros(S)
+    single = np.ndim(p) == 0
+    ps = np.atleast_1d(np.asarray(p, dtype=float))
+    M, S, E, N = len(ps), len(graph.states), len(graph.edges), grid.steps
+    steps_at = np.arange(N + 1) if at is None else np.asarray(at, dtype=int)
+    row_of = {int(i): n for n, i in enumerate(steps_at)}
+    state_prob = np.zeros((M, len(steps_at), S))
+    exercised = np.zeros((M, N + 1, E))
+    up = ps[:, None, None]
+    down = (1.0 - ps)[:, None, None]
+    bufs = (np.zeros((M, S, N + 1)), np.zeros((M, S, N + 1)))
+    pi = bufs[0][..., :1]
+    pi[:, graph.initial, 0] = 1.0
+    absorbed = np.zeros((M, S))
     targets = [e.target for e in graph.edges]
     gone = [graph.states[t].abandoned or k in absorb for k, t in enumerate(targets)]
-    phases = ([s for s in pol.runs if not graph.states[s].invested],
-              [s for s in pol.runs if graph.states[s].invested])
+    phases = ([(s, pol.moves[s]) for s in pol.moves if not graph.states[s].invested],
+              [(s, pol.moves[s]) for s in pol.moves if graph.states[s].invested])
+    # one deciding state whose every move ends the path: no copies of the moved mass needed
+    alone = (len(pol.moves) == 1 and all(gone[code - 1] for steps in pol.moves.values()
+                                         for runs in steps.values() for _, _, code in runs))
     for i in range(N + 1):
         if i > 0:
-            nxt = bufs[i % 2][:, :i + 1]
-            np.multiply(pi, 1.0 - p, out=nxt[:, :i])
-            nxt[:, i] = 0.0
-            nxt[:, 1:] += p * pi
+            nxt = bufs[i % 2][..., :i + 1]
+            np.multiply(pi, down, out=nxt[..., :i])
+            nxt[..., i] = 0.0
+            nxt[..., 1:] += up * pi
             pi = nxt
         for sources in phases:
             moves = []
-            for s in sources:
-                steps = pol.runs[s]
-                if i not in steps:
-                    continue
-                starts, codes = steps[i]
-                ends = np.append(starts[1:], i + 1)
-                for a, b, code in zip(starts.tolist(), ends.tolist(), codes.tolist()):
-                    if code:
-                        moves.append((s, code - 1, a, b, pi[s, a:b].copy()))
+            for s, steps in sources:
+                for a, b, code in steps.get(i, ()):
+                    if alone:
+                        mass = pi[:, s, a:b]
+                        total = mass.sum(axis=1)
+                        mass[...] = 0.0                  # x - x: every path there leaves
+                        e_id = code - 1
+                        absorbed[:, targets[e_id]] += total
+                        exercised[:, i, e_id] += total
+                    else:
+                        moves.append((s, code - 1, a, b, pi[:, s, a:b].copy()))
             for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
-                pi[s, a:b] -= mass
-                total = mass.sum()
+                pi[:, s, a:b] -= mass
+                total = mass.sum(axis=1)
                 if gone[e_id]:
-                    absorbed[targets[e_id]] += total
+                    absorbed[:, targets[e_id]] += total
                 else:
-                    pi[targets[e_id], a:b] += mass
-                exercised[i, e_id] += total
-        state_prob[i] = pi.sum(axis=1) + absorbed
+                    pi[:, targets[e_id], a:b] += mass
+                exercised[:, i, e_id] += total
+        n = row_of.get(i)
+        if n is not None:
+            state_prob[:, n] = pi.sum(axis=2) + absorbed
+    if single:
+        return state_prob[0], exercised[0]
     return state_prob, exercised
 
 
