@@ -79,10 +79,15 @@ class Grid:
         """(u/d)^j for j = 0..steps (the grid refuses trees wider than float range)."""
         return np.exp(np.arange(self.steps + 1) * math.log(self.up / self.down))
 
+    @cached_property
+    def _heads(self) -> list:
+        """Project value at node (i, 0) of each step i (the lowest node), before the flow."""
+        base = (self.log_v0 + self.log_carry) + np.arange(self.steps + 1) * math.log(self.down)
+        return [math.exp(max(x, -_LOG_LIMIT)) for x in base.tolist()]
+
     def nodes(self, i: int) -> np.ndarray:
         """Project value at the nodes of step i, before that date's cash flow (cum-flow)."""
-        base = self.log_v0 + self.log_carry[i] + i * math.log(self.down)
-        return math.exp(max(base, -_LOG_LIMIT)) * self._powers[:i + 1]
+        return self._heads[i] * self._powers[:i + 1]
 
     def nodes_ex(self, i: int) -> np.ndarray:
         """Project value at step i after that date's cash flow (the value decisions look at; at
@@ -96,8 +101,7 @@ class Grid:
     def nodes_ex_at(self, i: int, js) -> list[float]:
         """``nodes_ex(i)[j]`` for each j in ``js`` (the same floating point values, computed
         for those nodes only)."""
-        base = self.log_v0 + self.log_carry[i] + i * math.log(self.down)
-        head, f, powers = math.exp(max(base, -_LOG_LIMIT)), self.ex_fraction(i), self._power_list
+        head, f, powers = self._heads[i], self.ex_fraction(i), self._power_list
         return [head * powers[j] * f for j in js]
 
     def memory_bytes(self, states: int) -> int:
@@ -404,38 +408,82 @@ def _record(policy, i, edges, cands, act, H, live):
         policy.gains[(live[src], i, e_id)] = _gains_around(region[0], region[1], i, gain)
 
 
-def _decide_scalar(h, edges, i, moves, gains, state, better):
-    """Decisions of a state whose every edge ends the project (a number received, e.g.
-    abandonment): the first edge with the largest amount wins where it beats carrying on, so
-    the exercise region is where h < that amount (one band of nodes when h grows with the
-    project value). ``moves``/``gains``: the policy's entries to fill (None: value only)."""
-    best, e_best = edges[0][2], edges[0][3]
-    for _, _, amount, e_id in edges[1:]:
-        if amount > best:
-            best, e_best = amount, e_id
-    if moves is None:
-        np.maximum(h, best, out=h)
-        return
-    np.less(h, best, out=better)
-    k = int(np.count_nonzero(better))
-    if not k:
-        moves[i] = ()
-        return
-    lo = int(better.argmax())
-    hi = i - int(better[::-1].argmax())
-    code = e_best + 1
-    if hi - lo + 1 == k:
-        moves[i] = ((lo, hi + 1, code),)
-    else:                                    # several bands (h not monotone in the value)
-        starts = [0] + (np.flatnonzero(better[1:] != better[:-1]) + 1).tolist()
-        stops = starts[1:] + [i + 1]
-        moves[i] = tuple((a, b, code) for a, b, inside in
-                         zip(starts, stops, better[starts].tolist()) if inside)
-
-    def gain(j):
-        return best - float(h[j])
-    gains[(state, i, e_best)] = _gains_around(lo, hi, i, gain)
-    np.copyto(h, best, where=better)
+def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_only):
+    """:func:`solve` for one live state whose every edge ends the project (abandonment): the
+    same arithmetic on 1-d slices. At each step the first edge offering the largest amount is
+    used where the carry-on value is below that amount (one band of low nodes when the value
+    grows with the project value; several bands are recorded as such)."""
+    N = grid.steps
+    p = grid.probability
+    a, b = grid.discount * (1.0 - p), grid.discount * p
+    state = graph.states[live[0]]
+    scale, fixed = np.float64(state.scale), np.float64(state.fixed)
+    heads, powers = grid._heads, grid._powers
+    delta = grid.delta.tolist()
+    late = grid.late.tolist() if grid.late is not None else [0.0] * (N + 1)
+    weights = grid.fixed_weight.tolist()
+    bufs = (np.empty(N + 1), np.empty(N + 1))
+    tmp = np.empty(N + 1)
+    better = np.empty(N + 1, dtype=bool)
+    moves = policy.moves.setdefault(live[0], {}) if policy is not None else None
+    gains = policy.gains if policy is not None else None
+    X = bufs[0]
+    np.multiply(scale, grid.nodes(N) * (1.0 - grid.delta[N]), out=X)
+    X += fixed * grid.fixed_beyond
+    for i in range(N, -1, -1):
+        if i < N:
+            H = bufs[(N - i) & 1][:i + 1]
+            np.multiply(X[1:], b, out=H)
+            t = tmp[:i + 1]
+            np.multiply(X[:-1], a, out=t)
+            H += t
+        else:
+            H = X
+        if late[i]:                                # the terminal value, paid after decisions
+            H += scale * (grid.nodes(i) * late[i])
+        edges = per_step[i][0]
+        if edges:
+            best, e_best = edges[0][2], edges[0][3]
+            for _, _, amount, e_id in edges[1:]:
+                if amount > best:
+                    best, e_best = amount, e_id
+            if moves is None or (today_only and i):
+                np.maximum(H, best, out=H)
+            else:
+                bt = better[:i + 1]
+                np.less(H, best, out=bt)
+                k = int(np.count_nonzero(bt))
+                if not k:
+                    moves[i] = ()
+                else:
+                    lo = int(bt.argmax())
+                    hi = lo + k - 1
+                    code = e_best + 1
+                    if hi <= i and np.count_nonzero(bt[lo:hi + 1]) == k:
+                        moves[i] = ((lo, hi + 1, code),)
+                    else:                     # several bands (carry-on not monotone in V)
+                        hi = i - int(bt[::-1].argmax())
+                        starts = [0] + (np.flatnonzero(bt[1:] != bt[:-1]) + 1).tolist()
+                        stops = starts[1:] + [i + 1]
+                        moves[i] = tuple((s, e, code) for s, e, inside in
+                                         zip(starts, stops, bt[starts].tolist()) if inside)
+                    below = H[max(lo - 2, 0):lo + 1].tolist()
+                    above = H[hi:hi + 3].tolist()
+                    below = [None] * (3 - len(below)) + [best - x for x in below]
+                    above = [best - x for x in above] + [None] * (3 - len(above))
+                    gains[(live[0], i, e_best)] = (lo, hi, *below, *above)
+                    np.copyto(H, best, where=bt)
+        share = delta[i] - late[i] if delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+        if share:
+            flow = np.multiply(powers[:i + 1], heads[i], out=tmp[:i + 1])
+            flow *= share * scale
+            H += flow
+        if fixed and weights[i]:
+            H += fixed * weights[i]
+        X = H
+    values = np.zeros(len(graph.states))
+    values[live[0]] = X[0]
+    return Solution(values=values, policy=policy, grid=grid, graph=graph)
 
 
 def solve(grid: Grid, graph: StateGraph, record: bool = False,
@@ -463,46 +511,30 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     policy = Policy() if record else None
 
     S = len(live)
-    one_state = S == 1
-    # one live state: every edge ends the project (amounts are numbers, no target slice)
-    scalar = one_state and all(e[1] < 0 for es in per_step for e in es[0] + es[1])
-    if scalar:      # one row: work on 1-d slices (same arithmetic, less indexing)
-        bufs = (np.empty(N + 1), np.empty(N + 1))
-        tmp = np.empty(N + 1)
-        better = np.empty(N + 1, dtype=bool)
-        X = bufs[0]
-        np.multiply(scales[0, 0], grid.nodes(N) * (1.0 - grid.delta[N]), out=X)
-        X += fixed[0, 0] * grid.fixed_beyond
-        own_moves = policy.moves.setdefault(live[0], {}) if record else None
-    else:
-        bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
-        tmp = np.empty((S, N + 1))
-        X = bufs[0]
-        np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
-        X += fixed * grid.fixed_beyond
+    if S == 1 and all(e[1] < 0 for es in per_step for e in es[0] + es[1]):
+        return _solve_alone(grid, graph, per_step, live, policy, today_only)
+    bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
+    tmp = np.empty((S, N + 1))
+    X = bufs[0]
+    np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
+    X += fixed * grid.fixed_beyond
     cur = 0
+    one_state = S == 1
     for i in range(N, -1, -1):
         if i < N:
             cur ^= 1
-            H = bufs[cur][..., :i + 1]
-            np.multiply(X[..., 1:], b, out=H)
-            t = tmp[..., :i + 1]
-            np.multiply(X[..., :-1], a, out=t)
+            H = bufs[cur][:, :i + 1]
+            np.multiply(X[:, 1:], b, out=H)
+            t = tmp[:, :i + 1]
+            np.multiply(X[:, :-1], a, out=t)
             H += t
         else:
             H = X
         late = grid.late_share(i)
         if late:                                   # the terminal value, paid after decisions
-            if scalar:
-                H += scales[0, 0] * (grid.nodes(i) * late)
-            else:
-                H += scales * (grid.nodes(i) * late)[None, :]
+            H += scales * (grid.nodes(i) * late)[None, :]
         invested_edges, commits = per_step[i]
-        if scalar and invested_edges:
-            recording = record and (i == 0 or not today_only)
-            _decide_scalar(H, invested_edges, i, own_moves if recording else None,
-                           policy.gains if recording else None, live[0], better[:i + 1])
-        elif invested_edges or commits:
+        if invested_edges or commits:
             recording = record and (i == 0 or not today_only)
             if recording:
                 carry = H.copy()
@@ -514,9 +546,9 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                 cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
                 if recording:
                     for (src, _, _, e_id), cand in zip(edges, cands):
-                        better_e = cand > H[src]
-                        act[src][better_e] = e_id + 1
-                        np.copyto(H[src], cand, where=better_e)
+                        better = cand > H[src]
+                        act[src][better] = e_id + 1
+                        np.copyto(H[src], cand, where=better)
                     every += edges
                     every_cand += cands
                 else:
@@ -530,21 +562,15 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
             flow = grid.nodes(i)
             if one_state:
                 flow *= share * scales[0, 0]
-                if scalar:
-                    H += flow
-                else:
-                    H[0] += flow
+                H[0] += flow
             else:
                 flow *= share
                 H += scales * flow[None, :]
         if has_fixed and grid.fixed_weight[i]:
-            if scalar:
-                H += fixed[0, 0] * grid.fixed_weight[i]
-            else:
-                H += fixed * grid.fixed_weight[i]
+            H += fixed * grid.fixed_weight[i]
         X = H
     values = np.zeros(len(graph.states))
-    values[live] = X[0] if scalar else X[:, 0]
+    values[live] = X[:, 0]
     return Solution(values=values, policy=policy, grid=grid, graph=graph)
 
 
@@ -575,11 +601,13 @@ def occupancy(sol: Solution, p, absorb=(), at=None):
     absorbed = np.zeros((M, S))
     targets = [e.target for e in graph.edges]
     gone = [graph.states[t].abandoned or k in absorb for k, t in enumerate(targets)]
+    if len(pol.moves) == 1 and all(gone[code - 1] for steps in pol.moves.values()
+                                   for runs in steps.values() for _, _, code in runs):
+        _occupancy_alone(pol, next(iter(pol.moves)), ps, steps_at, targets, state_prob,
+                         exercised)
+        return (state_prob[0], exercised[0]) if single else (state_prob, exercised)
     phases = ([(s, pol.moves[s]) for s in pol.moves if not graph.states[s].invested],
               [(s, pol.moves[s]) for s in pol.moves if graph.states[s].invested])
-    # one deciding state whose every move ends the path: no copies of the moved mass needed
-    alone = (len(pol.moves) == 1 and all(gone[code - 1] for steps in pol.moves.values()
-                                         for runs in steps.values() for _, _, code in runs))
     for i in range(N + 1):
         if i > 0:
             nxt = bufs[i % 2][..., :i + 1]
@@ -591,15 +619,7 @@ def occupancy(sol: Solution, p, absorb=(), at=None):
             moves = []
             for s, steps in sources:
                 for a, b, code in steps.get(i, ()):
-                    if alone:
-                        mass = pi[:, s, a:b]
-                        total = mass.sum(axis=1)
-                        mass[...] = 0.0                  # x - x: every path there leaves
-                        e_id = code - 1
-                        absorbed[:, targets[e_id]] += total
-                        exercised[:, i, e_id] += total
-                    else:
-                        moves.append((s, code - 1, a, b, pi[:, s, a:b].copy()))
+                    moves.append((s, code - 1, a, b, pi[:, s, a:b].copy()))
             for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
                 pi[:, s, a:b] -= mass
                 total = mass.sum(axis=1)
@@ -614,6 +634,60 @@ def occupancy(sol: Solution, p, absorb=(), at=None):
     if single:
         return state_prob[0], exercised[0]
     return state_prob, exercised
+
+
+_NEGLIGIBLE = 1e-300      # path mass below this is left out (it never shows in any sum)
+
+
+def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
+    """:func:`occupancy` when ``state`` (the initial state) is the only one that decides and
+    every move out of it ends the path (abandonment): the mass is followed only over the
+    window of nodes where it is not negligible (above the exercise band, a few dozen standard
+    deviations wide), so the pass costs a fraction of the full tree. Fills the arrays."""
+    M, N = len(ps), exercised.shape[1] - 1
+    moves = pol.moves[state]
+    bufs = (np.zeros((M, N + 1)), np.zeros((M, N + 1)))
+    tmp = np.empty((M, N + 1))
+    up, down = ps[:, None], (1.0 - ps)[:, None]
+    pi = bufs[0]
+    pi[:, 0] = 1.0
+    lo, hi = 0, 1                      # the window: nodes lo .. hi-1 hold the mass
+    absorbed = np.zeros((M, state_prob.shape[2]))
+    want = {int(i): n for n, i in enumerate(steps_at)}
+    rows = range(M)
+    for i in range(N + 1):
+        if i > 0 and lo < hi:
+            nxt = bufs[i % 2]
+            w = hi - lo
+            np.multiply(pi[:, lo:hi], down, out=nxt[:, lo:hi])
+            nxt[:, hi] = 0.0
+            t = tmp[:, :w]
+            np.multiply(pi[:, lo:hi], up, out=t)
+            nxt[:, lo + 1:hi + 1] += t
+            pi = nxt
+            hi += 1
+            while lo < hi and all(pi[m, lo] < _NEGLIGIBLE for m in rows):
+                lo += 1
+            while lo < hi and all(pi[m, hi - 1] < _NEGLIGIBLE for m in rows):
+                hi -= 1
+        for a, b, code in moves.get(i, ()):
+            a, b = max(a, lo), min(b, hi)
+            if a >= b:
+                continue
+            total = pi[:, a:b].sum(axis=1)
+            if a == lo:
+                lo = b
+            elif b == hi:
+                hi = a
+            else:
+                pi[:, a:b] = 0.0
+            absorbed[:, targets[code - 1]] += total
+            exercised[:, i, code - 1] += total
+        n = want.get(i)
+        if n is not None:
+            state_prob[:, n] = absorbed
+            if lo < hi:
+                state_prob[:, n, state] += pi[:, lo:hi].sum(axis=1)
 
 
 def plan(project: Project) -> Plan:
