@@ -412,7 +412,11 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
     """:func:`solve` for one live state whose every edge ends the project (abandonment): the
     same arithmetic on 1-d slices. At each step the first edge offering the largest amount is
     used where the carry-on value is below that amount (one band of low nodes when the value
-    grows with the project value; several bands are recorded as such)."""
+    grows with the project value; several bands are recorded as such).
+
+    When every term added to a slice grows with the node (non-negative scale and flows, node
+    values growing with j), rounding keeps each slice non-decreasing in j, so the nodes below
+    the amount are found by binary search instead of a comparison over the slice."""
     N = grid.steps
     p = grid.probability
     a, b = grid.discount * (1.0 - p), grid.discount * p
@@ -422,6 +426,11 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
     delta = grid.delta.tolist()
     late = grid.late.tolist() if grid.late is not None else [0.0] * (N + 1)
     weights = grid.fixed_weight.tolist()
+    shares = [d - t if d != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+              for i, (d, t) in enumerate(zip(delta, late))]
+    monotone = bool(scale == 0.0 or (
+        scale > 0.0 and 1.0 - delta[N] >= 0.0 and min(late) >= 0.0 and min(shares) >= 0.0
+        and np.all(powers[1:] >= powers[:-1])))
     bufs = (np.empty(N + 1), np.empty(N + 1))
     tmp = np.empty(N + 1)
     better = np.empty(N + 1, dtype=bool)
@@ -447,8 +456,19 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
             for _, _, amount, e_id in edges[1:]:
                 if amount > best:
                     best, e_best = amount, e_id
+            code = e_best + 1
             if moves is None or (today_only and i):
                 np.maximum(H, best, out=H)
+            elif monotone:
+                k = int(H.searchsorted(best))          # H[j] < best exactly for j < k
+                if k:
+                    moves[i] = ((0, k, code),)
+                    above = H[k - 1:k + 2].tolist()
+                    gains[(live[0], i, e_best)] = (0, k - 1, None, None, best - float(H[0]), *(
+                        [best - x for x in above] + [None, None])[:3])
+                    H[:k] = best
+                else:
+                    moves[i] = ()
             else:
                 bt = better[:i + 1]
                 np.less(H, best, out=bt)
@@ -458,7 +478,6 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
                 else:
                     lo = int(bt.argmax())
                     hi = lo + k - 1
-                    code = e_best + 1
                     if hi <= i and np.count_nonzero(bt[lo:hi + 1]) == k:
                         moves[i] = ((lo, hi + 1, code),)
                     else:                     # several bands (carry-on not monotone in V)
@@ -473,7 +492,7 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
                     above = [best - x for x in above] + [None] * (3 - len(above))
                     gains[(live[0], i, e_best)] = (lo, hi, *below, *above)
                     np.copyto(H, best, where=bt)
-        share = delta[i] - late[i] if delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+        share = shares[i]
         if share:
             flow = np.multiply(powers[:i + 1], heads[i], out=tmp[:i + 1])
             flow *= share * scale
