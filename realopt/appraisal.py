@@ -341,7 +341,8 @@ def _defer_cost_warnings(rights, fmt) -> list[str]:
 def _sample_steps(steps: int, limit: int = 240) -> np.ndarray:
     if steps + 1 <= limit:
         return np.arange(steps + 1)
-    return np.unique(np.round(np.linspace(0, steps, limit)).astype(int))
+    picked = np.round(np.linspace(0, steps, limit)).astype(int)      # non-decreasing
+    return picked[np.concatenate([[True], picked[1:] != picked[:-1]])]
 
 
 def _money_template(project: Project, digits: int = 1) -> str:
@@ -409,37 +410,84 @@ def _crossing(x_far, x_near, x_in, g_far, g_near, g_in, smooth: bool) -> float:
     return float(x_near + min(1.0, max(0.0, w)) * (x_in - x_near))
 
 
+def _crossings(x_far, x_near, x_in, g_far, g_near, g_in, smooth) -> list[float]:
+    """:func:`_crossing` over arrays (nan for None), element by element the same floating
+    point operations; an element that is not finite is handed to :func:`_crossing`."""
+    with np.errstate(all="ignore"):
+        lo_x, hi_x = np.minimum(x_near, x_in), np.maximum(x_near, x_in)
+        pasting = smooth & (g_far < g_near) & (g_near < 0)
+        s_far, s_near = np.sqrt(-g_far), np.sqrt(-g_near)
+        x = x_near + (x_near - x_far) * s_near / (s_far - s_near)
+        out = np.where(pasting, np.minimum(hi_x, np.maximum(lo_x, x)), np.nan)
+        geometric = ~pasting & (np.isnan(g_near) | np.isnan(g_in) | (g_in == g_near))
+        out = np.where(geometric, np.sqrt(x_near * x_in), out)
+        w = -g_near / (g_in - g_near)
+        linear = ~pasting & ~geometric
+        out = np.where(linear, x_near + np.minimum(1.0, np.maximum(0.0, w)) * (x_in - x_near),
+                       out)
+    out = out.tolist()
+    for k in np.flatnonzero(~np.isfinite(out) | (pasting & (s_far == s_near))).tolist():
+        def arg(a):
+            return None if math.isnan(a[k]) else float(a[k])
+        out[k] = _crossing(arg(x_far), float(x_near[k]), float(x_in[k]), arg(g_far),
+                           arg(g_near), arg(g_in), bool(smooth[k]))
+    return out
+
+
 def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
-    """Exercise region bounds of each edge from ``state`` at each step it is open."""
+    """Exercise region bounds of each edge from ``state`` at each step it is open (``steps``:
+    increasing step numbers)."""
     grid, graph, pol = sol.grid, sol.graph, sol.policy
     rights = {r.name: r for r in graph.rights}
     out = []
     label_of = graph.states[state].label
+    times = grid.times.tolist()
+    heads = np.asarray(grid._heads)
+    exf = (1.0 - grid.delta) + (grid.late if grid.late is not None else 0.0)
+    powers = grid._powers
+    nan = float("nan")
+    steps = np.asarray(steps, dtype=int)
     for e_id in edge_ids:
         e = graph.edges[e_id]
         label = e.label if e.kind == "switch" else e.kind
         open_at = exercise_steps(grid, rights[e.right])
-        times = grid.times.tolist()
-        for i in steps:
-            i = int(i)
-            if not open_at[i]:
-                continue
-            year = times[i]
-            g = pol.gains.get((state, i, e_id))
-            if g is None:
-                out.append(Threshold(year, label_of, label, None, None, never=True))
-                continue
-            lo, hi = g[0], g[1]
-            smooth = (state, i + 1, e_id) in pol.gains
-            lower = upper = None
-            if lo > 0:
-                v = grid.nodes_ex_at(i, (max(lo - 2, 0), lo - 1, lo))
-                lower = _crossing(v[0] if lo > 1 else None, v[1], v[2], g[2], g[3], g[4], smooth)
-            if hi < i:
-                v = grid.nodes_ex_at(i, (min(hi + 2, i), hi + 1, hi))
-                upper = _crossing(v[0] if hi + 2 <= i else None, v[1], v[2], g[7], g[6], g[5],
-                                  smooth)
-            out.append(Threshold(year, label_of, label, lower, upper))
+        found = {}
+        at = steps[open_at[steps]].tolist()
+        rows = [(i, g) for i in at if (g := pol.gains.get((state, i, e_id))) is not None]
+        if rows:
+            i_ = np.array([i for i, _ in rows])
+            lo = np.array([g[0] for _, g in rows])
+            hi = np.array([g[1] for _, g in rows])
+            g_ = np.array([[nan if x is None else x for x in g[2:]] for _, g in rows])
+            smooth = np.array([(state, i + 1, e_id) in pol.gains for i, _ in rows])
+
+            def value(j, ok):              # nodes_ex(i)[j] where ok, nan elsewhere
+                jj = np.where(ok, j, 0)
+                return np.where(ok, heads[i_] * powers[jj] * exf[i_], nan)
+            lower = [None] * len(rows)
+            upper = [None] * len(rows)
+            has = lo > 0
+            if has.any():
+                k = np.flatnonzero(has)
+                vals = _crossings(value(lo - 2, lo > 1)[k], value(lo - 1, has)[k],
+                                  value(lo, has)[k], g_[k, 0], g_[k, 1], g_[k, 2], smooth[k])
+                for kk, x in zip(k.tolist(), vals):
+                    lower[kk] = x
+            has = hi < i_
+            if has.any():
+                k = np.flatnonzero(has)
+                vals = _crossings(value(hi + 2, hi + 2 <= i_)[k], value(hi + 1, has)[k],
+                                  value(hi, hi >= 0)[k], g_[k, 5], g_[k, 4], g_[k, 3],
+                                  smooth[k])
+                for kk, x in zip(k.tolist(), vals):
+                    upper[kk] = x
+            found = {i: (a, b) for (i, _), a, b in zip(rows, lower, upper)}
+        for i in at:
+            bounds = found.get(i)
+            if bounds is None:
+                out.append(Threshold(times[i], label_of, label, None, None, never=True))
+            else:
+                out.append(Threshold(times[i], label_of, label, bounds[0], bounds[1]))
     out.sort(key=lambda t: t.year)
     return out
 
@@ -485,7 +533,7 @@ def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValu
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
         use_measure=measure, mode_shares=mode_shares,
-        rule=_rule(r, [t for t in thr if _plausible(grid, t)], side, fmt, v0,
+        rule=_rule(r, [t for t, ok in zip(thr, _plausible_all(grid, thr)) if ok], side, fmt, v0,
                    float(min(1.0, rw_use[-1])), grid.horizon))
 
 
@@ -541,6 +589,28 @@ def _plausible(grid: Grid, t: Threshold) -> bool:
         max(1e-300, grid.ex_fraction(i)))
     return all(abs(math.log(b) - centre) <= 5.0 * sd + 1e-12
                for b in (t.lower, t.upper) if b is not None and b > 0)
+
+
+def _plausible_all(grid: Grid, thr) -> list[bool]:
+    """:func:`_plausible` of each threshold (the same floating point test; the terms of each
+    date are computed once for all dates)."""
+    n = np.arange(grid.steps + 1)
+    sd = (0.5 * math.log(grid.up / grid.down) * np.sqrt(np.maximum(n, 1))).tolist()
+    g = grid.probability * grid.up + (1 - grid.probability) * grid.down
+    exf = [grid.ex_fraction(i) for i in range(grid.steps + 1)]
+    logs = {x: math.log(max(1e-300, x)) for x in set(exf)}
+    centre = ((grid.log_v0 + grid.log_carry) + n * math.log(g)
+              + np.array([logs[x] for x in exf])).tolist()
+    out = []
+    for t in thr:
+        if t.never:
+            out.append(True)
+            continue
+        i = grid.step_of(t.year)
+        c, d = centre[i], 5.0 * sd[i] + 1e-12
+        out.append(all(abs(math.log(b) - c) <= d for b in (t.lower, t.upper)
+                       if b is not None and b > 0))
+    return out
 
 
 def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:

@@ -660,53 +660,50 @@ _NEGLIGIBLE = 1e-300      # path mass below this is left out (it never shows in 
 
 def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
     """:func:`occupancy` when ``state`` (the initial state) is the only one that decides and
-    every move out of it ends the path (abandonment): the mass is followed only over the
-    window of nodes where it is not negligible (above the exercise band, a few dozen standard
-    deviations wide), so the pass costs a fraction of the full tree. Fills the arrays."""
-    M, N = len(ps), exercised.shape[1] - 1
+    every move out of it ends the path (abandonment): each measure's mass is followed only
+    over the window of nodes where it is not negligible (above the exercise band, a few dozen
+    standard deviations wide), one convolution per step. Fills the arrays."""
+    N = exercised.shape[1] - 1
     moves = pol.moves[state]
-    bufs = (np.zeros((M, N + 1)), np.zeros((M, N + 1)))
-    tmp = np.empty((M, N + 1))
-    up, down = ps[:, None], (1.0 - ps)[:, None]
-    pi = bufs[0]
-    pi[:, 0] = 1.0
-    lo, hi = 0, 1                      # the window: nodes lo .. hi-1 hold the mass
-    absorbed = np.zeros((M, state_prob.shape[2]))
     want = {int(i): n for n, i in enumerate(steps_at)}
-    rows = range(M)
-    for i in range(N + 1):
-        if i > 0 and lo < hi:
-            nxt = bufs[i % 2]
-            w = hi - lo
-            np.multiply(pi[:, lo:hi], down, out=nxt[:, lo:hi])
-            nxt[:, hi] = 0.0
-            t = tmp[:, :w]
-            np.multiply(pi[:, lo:hi], up, out=t)
-            nxt[:, lo + 1:hi + 1] += t
-            pi = nxt
-            hi += 1
-            while lo < hi and all(pi[m, lo] < _NEGLIGIBLE for m in rows):
-                lo += 1
-            while lo < hi and all(pi[m, hi - 1] < _NEGLIGIBLE for m in rows):
-                hi -= 1
-        for a, b, code in moves.get(i, ()):
-            a, b = max(a, lo), min(b, hi)
-            if a >= b:
-                continue
-            total = pi[:, a:b].sum(axis=1)
-            if a == lo:
-                lo = b
-            elif b == hi:
-                hi = a
-            else:
-                pi[:, a:b] = 0.0
-            absorbed[:, targets[code - 1]] += total
-            exercised[:, i, code - 1] += total
-        n = want.get(i)
-        if n is not None:
-            state_prob[:, n] = absorbed
-            if lo < hi:
-                state_prob[:, n, state] += pi[:, lo:hi].sum(axis=1)
+    for m, p in enumerate(ps.tolist()):
+        kernel = np.array([1.0 - p, p])    # node j keeps (1 - p) of its mass, j+1 gains p
+        pi, lo = np.ones(1), 0             # the window: mass at nodes lo .. lo + pi.size - 1
+        left = []                          # (step, edge, mass leaving there)
+        alive = {}
+        for i in range(N + 1):
+            if i and pi.size:
+                pi = np.convolve(pi, kernel)
+                while pi.size and pi[0] < _NEGLIGIBLE:
+                    pi = pi[1:]
+                    lo += 1
+                while pi.size and pi[-1] < _NEGLIGIBLE:
+                    pi = pi[:-1]
+            runs = moves.get(i)
+            if runs and pi.size:
+                for a, b, code in runs:
+                    a, b = max(a, lo) - lo, min(b, lo + pi.size) - lo
+                    if a >= b:
+                        continue
+                    piece = pi[a:b]
+                    left.append((i, code - 1, float(piece.sum()) if b - a > 8
+                                 else sum(piece.tolist())))
+                    if a == 0:
+                        pi = pi[b:]
+                        lo += b
+                    elif b == pi.size:
+                        pi = pi[:a]
+                    else:
+                        pi = pi.copy()
+                        pi[a:b] = 0.0
+            if i in want:
+                alive[i] = float(pi.sum())
+        for i, e_id, mass in left:
+            exercised[m, i, e_id] += mass
+        gone = np.cumsum(exercised[m], axis=0)[list(want)]      # by edge, at steps_at
+        for e_id, t in enumerate(targets):
+            state_prob[m, :, t] += gone[:, e_id]
+        state_prob[m, :, state] += [alive[i] for i in want]
 
 
 def plan(project: Project) -> Plan:
