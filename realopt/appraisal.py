@@ -706,22 +706,31 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}
         codes = np.full((n_values, len(steps)), -1, dtype=np.int16)
-        for col, i in enumerate(steps):
-            i = int(i)
-            if i not in runs:
-                continue
-            v = grid.nodes_ex(i)
-            if not np.all(v > 0):
-                continue
-            logs = np.log(v[[0, -1]])        # (elementwise: the same as logs of all of v)
+        cols = [(col, int(i)) for col, i in enumerate(steps.tolist()) if int(i) in runs]
+        if grid.up > grid.down:      # node values grow with j: all positive iff the lowest is
+            ends = [grid.nodes_ex_at(i, (0, i)) for _, i in cols]
+            cols = [c for c, (v0, _) in zip(cols, ends) if v0 > 0]
+            ends = np.array([e for e in ends if e[0] > 0]).reshape(-1, 2)
+        else:
+            keep = [np.all(grid.nodes_ex(i) > 0) for _, i in cols]
+            cols = [c for c, k in zip(cols, keep) if k]
+            ends = np.array([grid.nodes_ex_at(i, (0, i)) for _, i in cols]).reshape(-1, 2)
+        if cols:
+            logs = np.log(ends)          # (elementwise: the same as logs of all of v)
             step = math.log(grid.up / grid.down)
-            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_values, int)
-            inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
-            nodes = j[inside]
-            mapped = np.zeros(nodes.size, dtype=np.int16)
-            for a, b, c in runs[i]:
-                mapped[(nodes >= a) & (nodes < b)] = lookup[c]
-            codes[inside, col] = mapped
+            at = np.array([i for _, i in cols])
+            j = np.where(at > 0, np.rint((lv[:, None] - logs[None, :, 0]) / step), 0).astype(int)
+            inside = ((j >= 0) & (j <= at) & (lv[:, None] >= logs[:, 0] - step / 2)
+                      & (lv[:, None] <= logs[:, 1] + step / 2))
+            block = np.where(inside, 0, -1).astype(np.int16)
+            width = max(len(runs[i]) for _, i in cols)
+            for r in range(width):               # the r-th run of each date (if any)
+                a, b, c = (np.array(x) for x in zip(*[
+                    runs[i][r] if r < len(runs[i]) else (0, 0, 0) for _, i in cols]))
+                hit = inside & (j >= a) & (j < b)
+                block[hit] = np.broadcast_to(np.array([lookup.get(x, 0) for x in c.tolist()],
+                                                      dtype=np.int16), hit.shape)[hit]
+            codes[:, [col for col, _ in cols]] = block
         maps.append(DecisionMap(state=graph.states[s].label, actions=tuple(labels),
                                 times=grid.times[steps], values=values, codes=codes))
     return tuple(maps)
