@@ -749,25 +749,29 @@ def _fan(grid: Grid, steps):
     mean_rw = np.empty(len(steps))
     mean_rn = np.empty(len(steps))
     cell = math.log(grid.up / grid.down)          # log spacing of the nodes at one step
+    growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
+    levels = np.array([q / 100.0 for q in PERCENTILES])
+    if 0.0 < p < 1.0:                             # k * log(p), k * log(1 - p) for k = 0..N
+        ups = np.arange(N + 1) * math.log(p)
+        downs = np.arange(N + 1) * math.log(1 - p)
     for col, i in enumerate(steps):
         i = int(i)
         v = grid.nodes_ex(i)
-        j = np.arange(i + 1)
-        if 0.0 < p < 1.0:
-            logpmf = logfact[i] - logfact[j] - logfact[i - j] + j * math.log(p) + (i - j) * math.log(1 - p)
+        if 0.0 < p < 1.0:   # log C(i, j) + j log p + (i - j) log(1 - p), j = 0..i
+            logpmf = logfact[i] - logfact[:i + 1] - logfact[i::-1] + ups[:i + 1] + downs[i::-1]
             pmf = np.exp(logpmf)
         else:
             pmf = np.zeros(i + 1)
             pmf[i if p >= 1.0 else 0] = 1.0
         cdf = np.cumsum(pmf)
-        for q in PERCENTILES:
-            k = min(i, int(np.searchsorted(cdf, q / 100.0)))
-            fan[q][col] = v[k]
-            if i > 0 and v[k] > 0 and pmf[k] > 0:   # node mass spread over its log cell
-                w = min(1.0, max(0.0, (q / 100.0 - (cdf[k] - pmf[k])) / pmf[k]))
-                fan[q][col] = v[k] * math.exp((w - 0.5) * cell)
+        ks = np.minimum(i, np.searchsorted(cdf, levels)).tolist()
+        for q, k in zip(PERCENTILES, ks):
+            vk, pk = float(v[k]), float(pmf[k])
+            fan[q][col] = vk
+            if i > 0 and vk > 0 and pk > 0:      # node mass spread over its log cell
+                w = min(1.0, max(0.0, (q / 100.0 - (float(cdf[k]) - pk)) / pk))
+                fan[q][col] = vk * math.exp((w - 0.5) * cell)
         mean_rw[col] = float(pmf @ v)
-        growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
         mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
             grid.ex_fraction(i))
     return grid.times[steps], fan, mean_rw, mean_rn
