@@ -14,6 +14,8 @@ DCF of the file's flows (equal to ``present_value`` when every start mode is the
 """
 from __future__ import annotations
 
+import functools
+import gc
 import math
 from dataclasses import dataclass, replace
 
@@ -261,6 +263,23 @@ def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, flo
     return v.static_npv, full, _decision_today(sol, graph, full, _money_format(project))
 
 
+def _without_gc_pauses(fn):
+    """Run ``fn`` with the cyclic garbage collector paused: an appraisal makes many small
+    objects (policy runs, thresholds) and no reference cycles, and a full collection in the
+    middle of it can cost more than the work."""
+    @functools.wraps(fn)
+    def run(*args, **kwargs):
+        if not gc.isenabled():
+            return fn(*args, **kwargs)
+        gc.disable()
+        try:
+            return fn(*args, **kwargs)
+        finally:
+            gc.enable()
+    return run
+
+
+@_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
     """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
     if len(project.rights) > MAX_RIGHTS:
@@ -592,8 +611,8 @@ def _plausible(grid: Grid, t: Threshold) -> bool:
 
 
 def _plausible_all(grid: Grid, thr) -> list[bool]:
-    """:func:`_plausible` of each threshold (the same floating point test; the terms of each
-    date are computed once for all dates)."""
+    """:func:`_plausible` of each threshold: the same floating point test, with the terms of
+    each date computed once for all dates."""
     n = np.arange(grid.steps + 1)
     sd = (0.5 * math.log(grid.up / grid.down) * np.sqrt(np.maximum(n, 1))).tolist()
     g = grid.probability * grid.up + (1 - grid.probability) * grid.down

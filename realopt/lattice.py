@@ -662,18 +662,19 @@ def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
     """:func:`occupancy` when ``state`` (the initial state) is the only one that decides and
     every move out of it ends the path (abandonment): each measure's mass is followed only
     over the window of nodes where it is not negligible (above the exercise band, a few dozen
-    standard deviations wide), one convolution per step. Fills the arrays."""
+    standard deviations wide), one correlation (the two-point stencil) per step. Fills the
+    arrays."""
     N = exercised.shape[1] - 1
     moves = pol.moves[state]
     want = {int(i): n for n, i in enumerate(steps_at)}
     for m, p in enumerate(ps.tolist()):
-        kernel = np.array([1.0 - p, p])    # node j keeps (1 - p) of its mass, j+1 gains p
+        kernel = np.array([p, 1.0 - p])    # node j keeps (1 - p) of its mass, j+1 gains p
         pi, lo = np.ones(1), 0             # the window: mass at nodes lo .. lo + pi.size - 1
         left = []                          # (step, edge, mass leaving there)
         alive = {}
         for i in range(N + 1):
             if i and pi.size:
-                pi = np.convolve(pi, kernel)
+                pi = np.correlate(pi, kernel, "full")     # new[j] = q old[j] + p old[j-1]
                 while pi.size and pi[0] < _NEGLIGIBLE:
                     pi = pi[1:]
                     lo += 1
