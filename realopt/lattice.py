@@ -374,11 +374,15 @@ def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
     return per_step
 
 
-def _gains_around(lo: int, hi: int, i: int, gain) -> tuple:
-    """(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside nodes 0..i."""
-    def at(j):
-        return gain(j) if 0 <= j <= i else None
-    return (lo, hi, at(lo - 2), at(lo - 1), at(lo), at(hi), at(hi + 1), at(hi + 2))
+def _gains_around(lo: int, hi: int, cand, carry) -> tuple:
+    """(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside the slice; gain =
+    cand - carry (cand: a number or an array over the slice's nodes)."""
+    near, far = slice(max(lo - 2, 0), lo + 1), slice(hi, hi + 3)
+    if isinstance(cand, np.ndarray):
+        below, above = (cand[near] - carry[near]).tolist(), (cand[far] - carry[far]).tolist()
+    else:
+        below, above = (cand - carry[near]).tolist(), (cand - carry[far]).tolist()
+    return (lo, hi, *([None] * (3 - len(below)) + below), *(above + [None] * (3 - len(above))))
 
 
 def _record(policy, i, edges, cands, act, H, live):
@@ -398,14 +402,7 @@ def _record(policy, i, edges, cands, act, H, live):
         region = span.get((src, e_id + 1))
         if region is None:
             continue
-        carry = H[src]
-        if isinstance(cand, np.ndarray):
-            def gain(j, cand=cand, carry=carry):
-                return float(cand[j] - carry[j])
-        else:
-            def gain(j, cand=cand, carry=carry):
-                return cand - float(carry[j])
-        policy.gains[(live[src], i, e_id)] = _gains_around(region[0], region[1], i, gain)
+        policy.gains[(live[src], i, e_id)] = _gains_around(region[0], region[1], cand, H[src])
 
 
 def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_only):
@@ -486,11 +483,7 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
                         stops = starts[1:] + [i + 1]
                         moves[i] = tuple((s, e, code) for s, e, inside in
                                          zip(starts, stops, bt[starts].tolist()) if inside)
-                    below = H[max(lo - 2, 0):lo + 1].tolist()
-                    above = H[hi:hi + 3].tolist()
-                    below = [None] * (3 - len(below)) + [best - x for x in below]
-                    above = [best - x for x in above] + [None] * (3 - len(above))
-                    gains[(live[0], i, e_best)] = (lo, hi, *below, *above)
+                    gains[(live[0], i, e_best)] = _gains_around(lo, hi, best, H)
                     np.copyto(H, best, where=bt)
         share = shares[i]
         if share:
@@ -534,6 +527,9 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         return _solve_alone(grid, graph, per_step, live, policy, today_only)
     bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
     tmp = np.empty((S, N + 1))
+    delta = grid.delta.tolist()
+    lates = grid.late.tolist() if grid.late is not None else [0.0] * (N + 1)
+    weights = grid.fixed_weight.tolist()
     X = bufs[0]
     np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
     X += fixed * grid.fixed_beyond
@@ -549,7 +545,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
             H += t
         else:
             H = X
-        late = grid.late_share(i)
+        late = lates[i]
         if late:                                   # the terminal value, paid after decisions
             H += scales * (grid.nodes(i) * late)[None, :]
         invested_edges, commits = per_step[i]
@@ -575,8 +571,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                         np.maximum(H[src], cand, out=H[src])
             if recording:
                 _record(policy, i, every, every_cand, act, carry, live)
-        share = grid.delta[i] - late if grid.delta[i] != 0.0 else (
-            grid.yield_flow if i > 0 else 0.0)
+        share = delta[i] - late if delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
         if share:
             flow = grid.nodes(i)
             if one_state:
@@ -584,9 +579,11 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                 H[0] += flow
             else:
                 flow *= share
-                H += scales * flow[None, :]
-        if has_fixed and grid.fixed_weight[i]:
-            H += fixed * grid.fixed_weight[i]
+                t = tmp[:, :i + 1]
+                np.multiply(scales, flow[None, :], out=t)
+                H += t
+        if has_fixed and weights[i]:
+            H += fixed * weights[i]
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
