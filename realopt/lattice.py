@@ -309,10 +309,6 @@ class Policy:
     # nodes first-2, first-1, first, last, last+1, last+2; None outside the slice)
     gains: dict = field(default_factory=dict)
 
-    def decides(self, state: int, step: int) -> bool:
-        """Whether ``state`` has a choice at ``step``."""
-        return step in self.moves.get(state, {})
-
     def actions(self, state: int, step: int) -> np.ndarray:
         """Action code of every node of ``step`` (0 where the state has no choice)."""
         out = np.zeros(step + 1, dtype=np.int16)
@@ -321,32 +317,11 @@ class Policy:
         return out
 
     def action(self, state: int, step: int, node: int) -> int:
+        """Action code at one node (0: carry on, or no choice at that step)."""
         for a, b, code in self.moves.get(state, {}).get(step, ()):
             if a <= node < b:
                 return code
         return 0
-
-    @property
-    def runs(self) -> dict:
-        """The same policy run-length coded: ``runs[state][step] = (starts, codes)``, node
-        indices starts[k] .. starts[k+1]-1 taking codes[k]."""
-        out = {}
-        for s, steps in self.moves.items():
-            out[s] = {}
-            for i, moves in steps.items():
-                starts, codes, at = [], [], 0
-                for a, b, code in moves:
-                    if a > at:
-                        starts.append(at)
-                        codes.append(0)
-                    starts.append(a)
-                    codes.append(code)
-                    at = b
-                if at <= i or not starts:
-                    starts.append(at)
-                    codes.append(0)
-                out[s][i] = (np.array(starts), np.array(codes, dtype=np.int16))
-        return out
 
 
 @dataclass
