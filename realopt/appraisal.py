@@ -477,7 +477,7 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
             i_ = np.array([i for i, _ in rows])
             lo = np.array([g[0] for _, g in rows])
             hi = np.array([g[1] for _, g in rows])
-            g_ = np.array([[nan if x is None else x for x in g[2:]] for _, g in rows])
+            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # None -> nan
             smooth = np.array([(state, i + 1, e_id) in pol.gains for i, _ in rows])
 
             def value(j, ok):              # nodes_ex(i)[j] where ok, nan elsewhere
@@ -620,15 +620,22 @@ def _plausible_all(grid: Grid, thr) -> list[bool]:
     logs = {x: math.log(max(1e-300, x)) for x in set(exf)}
     centre = ((grid.log_v0 + grid.log_carry) + n * math.log(g)
               + np.array([logs[x] for x in exf])).tolist()
+    step = {t: i for i, t in enumerate(grid.times.tolist())}     # = grid.step_of(year)
     out = []
+    log = math.log
     for t in thr:
-        if t.never:
-            out.append(True)
-            continue
-        i = grid.step_of(t.year)
-        c, d = centre[i], 5.0 * sd[i] + 1e-12
-        out.append(all(abs(math.log(b) - c) <= d for b in (t.lower, t.upper)
-                       if b is not None and b > 0))
+        ok = True
+        if not t.never:
+            i = step.get(t.year)
+            i = grid.step_of(t.year) if i is None else i
+            c, d = centre[i], 5.0 * sd[i] + 1e-12
+            b = t.lower
+            if b is not None and b > 0:
+                ok = abs(log(b) - c) <= d
+            b = t.upper
+            if ok and b is not None and b > 0:
+                ok = abs(log(b) - c) <= d
+        out.append(ok)
     return out
 
 
