@@ -7,7 +7,8 @@ Node (i, j) (step i, j up-moves) carries the base project value just before that
 V = V0 * C_i * u^j * d^(i-j), C_i the product of (1 - delta) over cash-flow dates before step i.
 
 Backward induction holds one array per state and time slice (shape: states x nodes); the policy is
-kept as run-length codes per state and step (see ``Policy``), never a full tree of values.
+kept as the runs of nodes where a right is used, per state and step (see ``Policy``), never
+a full tree of values.
 
 The project ends at its last cash-flow date (cash-flow forms): at that date the year's flow is paid
 first, then the decisions are taken, then the terminal value is paid to the state chosen (a sale
@@ -105,7 +106,7 @@ class Grid:
         return [head * powers[j] * f for j in js]
 
     def memory_bytes(self, states: int) -> int:
-        """Rough peak memory of one solve: a few slices per state plus the run-length policy."""
+        """Rough peak memory of one solve: a few slices per state plus the recorded policy."""
         return int(8 * 6 * states * (self.steps + 1) + 200 * states * (self.steps + 1))
 
 
