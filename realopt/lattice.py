@@ -640,6 +640,7 @@ def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
     N = exercised.shape[1] - 1
     moves = pol.moves[state]
     want = {int(i): n for n, i in enumerate(steps_at)}
+    correlate, cut = np.correlate, _NEGLIGIBLE
     for m, p in enumerate(ps.tolist()):
         kernel = np.array([p, 1.0 - p])    # node j keeps (1 - p) of its mass, j+1 gains p
         pi, lo = np.ones(1), 0             # the window: mass at nodes lo .. lo + pi.size - 1
@@ -647,12 +648,18 @@ def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
         alive = {}
         for i in range(N + 1):
             if i and pi.size:
-                pi = np.correlate(pi, kernel, "full")     # new[j] = q old[j] + p old[j-1]
-                while pi.size and pi[0] < _NEGLIGIBLE:
-                    pi = pi[1:]
-                    lo += 1
-                while pi.size and pi[-1] < _NEGLIGIBLE:
-                    pi = pi[:-1]
+                pi = correlate(pi, kernel, "full")     # new[j] = q old[j] + p old[j-1]
+                if pi[0] < cut:
+                    k = 1
+                    while k < pi.size and pi[k] < cut:
+                        k += 1
+                    pi = pi[k:]
+                    lo += k
+                if pi.size and pi[-1] < cut:
+                    k = pi.size - 1
+                    while k > 0 and pi[k - 1] < cut:
+                        k -= 1
+                    pi = pi[:k]
             runs = moves.get(i)
             if runs and pi.size:
                 for a, b, code in runs:
