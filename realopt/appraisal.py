@@ -780,6 +780,7 @@ def _fan(grid: Grid, steps):
     if 0.0 < p < 1.0:                             # k * log(p), k * log(1 - p) for k = 0..N
         ups = np.arange(N + 1) * math.log(p)
         downs = np.arange(N + 1) * math.log(1 - p)
+    at = np.empty((len(steps), 3, len(levels)))   # value, mass and cdf at each percentile's node
     for col, i in enumerate(steps):
         i = int(i)
         v = grid.nodes_ex(i)
@@ -790,14 +791,19 @@ def _fan(grid: Grid, steps):
             pmf = np.zeros(i + 1)
             pmf[i if p >= 1.0 else 0] = 1.0
         cdf = np.cumsum(pmf)
-        ks = np.minimum(i, np.searchsorted(cdf, levels)).tolist()
-        for q, k in zip(PERCENTILES, ks):
-            vk, pk = float(v[k]), float(pmf[k])
-            fan[q][col] = vk
-            if i > 0 and vk > 0 and pk > 0:      # node mass spread over its log cell
-                w = min(1.0, max(0.0, (q / 100.0 - (float(cdf[k]) - pk)) / pk))
-                fan[q][col] = vk * math.exp((w - 0.5) * cell)
+        ks = np.minimum(i, np.searchsorted(cdf, levels))
+        row = at[col]
+        row[0], row[1], row[2] = v[ks], pmf[ks], cdf[ks]
         mean_rw[col] = float(pmf @ v)
         mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
             grid.ex_fraction(i))
+    vk, pk, ck = at[:, 0], at[:, 1], at[:, 2]
+    spread = (np.asarray(steps)[:, None] > 0) & (vk > 0) & (pk > 0)   # mass over its log cell
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.minimum(1.0, np.maximum(0.0, (levels - (ck - pk)) / pk))
+    shifts = ((w - 0.5) * cell).tolist()
+    values = vk.tolist()
+    for n, (row, keep) in enumerate(zip(values, spread.tolist())):
+        for m, q in enumerate(PERCENTILES):
+            fan[q][n] = row[m] * math.exp(shifts[n][m]) if keep[m] else row[m]
     return grid.times[steps], fan, mean_rw, mean_rn
