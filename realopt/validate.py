@@ -321,6 +321,7 @@ def check(obj, source: str | None = None) -> None:
 
 _ROOTS = {model.Market: ("market",), model.Underlying: ("underlying",),
           model.DriverModel: ("underlying",), model.LatticeSpec: ("lattice",),
+          model.VolatilityEstimate: ("underlying", "volatility"),
           model.Investment: ("investment",)}
 
 
