@@ -15,9 +15,8 @@ ROOT = Path(__file__).resolve().parents[1] / "realopt"
 
 # lowest first; a module may import its own layer and the layers before it
 LAYERS = (
-    ("model", ("realopt.model", "realopt.errors", "realopt.validate", "realopt.jsontext",
-               "realopt.formula",
-               "realopt.forecast", "realopt.rights.*")),
+    ("model", ("realopt.model", "realopt.errors", "realopt.validate", "realopt.keypaths",
+               "realopt.jsontext", "realopt.formula", "realopt.forecast", "realopt.rights.*")),
     ("project", ("realopt.project", "realopt.project.*", "realopt.project_simulation")),
     ("underlying", ("realopt.underlying", "realopt.drivers")),
     ("rights", ("realopt.rights", "realopt.rights.graph")),
