@@ -226,6 +226,13 @@ RULES: dict[type, dict[str, Rule]] = {
     },
 }
 
+# money schedules that must not go below 0: (what it is, in the loader's words)
+SCHEDULES: dict[type, dict[str, str]] = {
+    model.Defer: {"cost": "the cost paid on committing"},
+    model.Expand: {"cost": "the cost of the expansion"},
+}
+GROWTH = Rule("a yearly growth rate above -1 (0.02 for 2%)", gt=-1.0)
+
 WINDOW_EXPECTED = "[start, end] in years from now, 0 <= start <= end (both inclusive)"
 WINDOW_ENDS = (Rule("the window's start, a year 0 or later", ge=0.0),
                Rule("the window's end, a year 0 or later", ge=0.0))
@@ -285,6 +292,24 @@ def _root_path(obj) -> tuple:
     return _ROOTS.get(type(obj), ())
 
 
+def _schedule(s, what, path, out):
+    """A schedule of 0 or more, with the loader's wording for each of its three forms."""
+    if s is None or not isinstance(s, model.Schedule):
+        return
+    if s.start is not None:
+        checks = [(path + ("start",), number_problem(s.start, f"{what} at year 0 of 0 or more",
+                                                     ge=0.0)),
+                  (path + ("growth",), GROWTH.problem(s.growth))]
+    elif len(s.points) == 1:
+        checks = [(path, number_problem(
+            s.points[0][1], f"{what} of 0 or more: a number, a mapping {{year: amount}} (linear "
+            "between the years, flat beyond), or {start: amount, growth: yearly rate}", ge=0.0))]
+    else:
+        checks = [(path + (f"{y:g}",), number_problem(v, f"{what} of 0 or more at year {y:g}",
+                                                      ge=0.0)) for y, v in s.points]
+    out.extend(Issue(p, *bad) for p, bad in checks if bad is not None)
+
+
 def _fields_of(obj, path, out):
     for c in reversed(type(obj).__mro__):
         for name, rule in RULES.get(c, {}).items():
@@ -293,6 +318,8 @@ def _fields_of(obj, path, out):
             bad = rule.problem(getattr(obj, name))
             if bad is not None:
                 out.append(Issue(path + (name,), *bad))
+        for name, what in SCHEDULES.get(c, {}).items():
+            _schedule(getattr(obj, name), what, path + (name,), out)
 
 
 def _walk(obj, path, out):
