@@ -21,7 +21,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from . import CAUTION
+from . import CAUTION, validate
 from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project, Switch
@@ -281,7 +281,11 @@ def _without_gc_pauses(fn):
 
 @_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
-    """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
+    """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
+
+    A project built in Python is checked against the model's rules first (realopt.validate):
+    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get."""
+    validate.check(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "
