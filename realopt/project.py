@@ -37,7 +37,7 @@ MAX_FILE_BYTES = 1_000_000        # a project file is a few kilobytes; data belo
 MAX_NODES = 100_000               # values after expanding aliases ("billion laughs" guard)
 MAX_DEPTH = 32                    # nesting of lists/mappings
 VOLATILITY_WARN = 1.5             # yearly sigma above which the loader warns
-RATE_WARN = 1.0                   # a yearly rate above 100% is probably a percentage typo
+RATE_WARN = 1.0                   # a yearly rate above 100% is a percentage typo: refused
 
 # libyaml's safe composer when PyYAML was built with it (20x faster), else the pure-Python one;
 # both only compose nodes: nothing is constructed by PyYAML here.
@@ -830,8 +830,12 @@ class _Builder:
             r = self.number(path + (key,), d[key], f"{what}, a fraction above -1 (0.035 for 3.5%)",
                             gt=-1.0)
             if r is not None and r > RATE_WARN:
-                self.warn(path + (key,), f"{r:g} is a rate above 100% a year; if you meant "
-                          f"{r:g}%, write {r / 100:g}")
+                # 4 or 9.5 is a percentage written without its sign: refused at the key, before
+                # the lattice would give advice about steps and volatility for a 400% rate
+                self.bad(path + (key,), f"{r:g}, a rate of {r * 100:,.0f}% a year",
+                         f"{what} as a fraction, at most 1 (0.035 for 3.5%)",
+                         f"did you mean {r / 100:g}? Write {r / 100:g} for {r:g}%")
+                r = None
             rates[key] = r
         rf = rates.get("risk_free_rate")
         dr = rates.get("discount_rate", rf)
@@ -1286,7 +1290,7 @@ class _Builder:
                 fix = "start each right with '- name: ...' so that rights is a list"
             self.bad(path, describe(value), "a list of rights, each starting with '- name:'", fix)
             return None
-        out, ok, seen = [], True, {}
+        out, ok, seen, at = [], True, {}, []
         for i, item in enumerate(value):
             r = self.right(path + (Index(i),), item)
             if r is None:
@@ -1300,14 +1304,21 @@ class _Builder:
                 continue
             seen[r.name] = i
             out.append(r)
+            at.append(i)
         if not ok:
+            # names in requires/excludes are checked now too, so that every problem is
+            # reported in one pass; names of rights that failed to build count as known
+            known = [str(item["name"]).strip() for item in value
+                     if isinstance(item, dict) and isinstance(item.get("name"), (str, int, float))
+                     and not isinstance(item.get("name"), bool)]
+            self.links(path, out, at, known)
             return None
         defers = [i for i, r in enumerate(out) if isinstance(r, model.Defer)]
         for i in defers[1:]:
             self.bad(path + (Index(i), "type"), "a second defer right", "at most one defer "
                      "right (one decision to commit)", "merge the waiting periods into one "
                      "window, or use bermudan dates")
-        self.links(path, out)
+        self.links(path, out, at)
         if lattice is not None and lattice.explicit:
             self.on_grid(path, out, lattice.step_years)
         return tuple(out)
@@ -1352,9 +1363,13 @@ class _Builder:
         if None in (name, window, exercise, dates, requires, excludes, specific):
             return None
         if kind == "defer" and window[0] != 0:
-            self.bad(path + ("window",), f"a window starting at year {window[0]:g}",
+            fix = f"write window: [0, {window[1]:g}]"
+            if exercise == "bermudan":
+                fix += " and dates: [" + ", ".join(f"{d:g}" for d in sorted({0.0, *dates})) + "]"
+            self.bad(path + ("window",), f"a window starting at year {window[0]:g}, but the "
+                     "defer window must start at 0",
                      "a defer window starting at 0 (committing now is always one of the choices)",
-                     f"write window: [0, {window[1]:g}]")
+                     fix)
             return None
         cls = model.RIGHT_TYPES[kind]
         return cls(name=name, window=window, exercise=exercise, dates=dates, requires=requires,
@@ -1402,6 +1417,9 @@ class _Builder:
                      "e.g. [0, 1, 2]")
             return None
         out, ok = [], True
+        late_defer = kind == "defer" and window and window[0] != 0
+        if late_defer:                 # the window's own problem says to start it at 0
+            window = (0.0, window[1])
         for i, v in enumerate(value):
             d = self.number(path + (Index(i),), v, "an exercise date (years from now), 0 or later",
                             ge=0.0)
@@ -1417,7 +1435,7 @@ class _Builder:
         if not ok:
             return None
         out = sorted(set(out))
-        if kind == "defer" and out[0] != 0:
+        if kind == "defer" and out[0] != 0 and not late_defer:
             self.bad(path, describe(value), "defer dates that include 0 (committing now is "
                      "always one of the choices)", "add 0 to the dates")
             return None
@@ -1560,10 +1578,24 @@ class _Builder:
                 out.append((a, b, sched))
         return tuple(out) if ok else None
 
-    def links(self, path, rights):
-        """requires/excludes: known names, not self, requires never an abandon right, no cycle."""
-        index = {r.name: i for i, r in enumerate(rights)}
-        names = list(index)
+    def links(self, path, rights, at=None, known=None):
+        """requires/excludes: known names, not self, requires never an abandon right, no cycle.
+        ``at``: each right's index in the file's list; ``known``: every name in the file (when
+        some rights failed to build: only the spelling of the names is checked then)."""
+        at = list(range(len(rights))) if at is None else at
+        index = {r.name: k for k, r in enumerate(rights)}
+        names = list(index) if known is None else list(dict.fromkeys(known))
+        if known is not None:
+            for k, r in enumerate(rights):
+                for key in ("requires", "excludes"):
+                    for j, target in enumerate(getattr(r, key)):
+                        if target not in names:
+                            hint = difflib.get_close_matches(target, names, n=1)
+                            self.bad(path + (Index(at[k]), key, Index(j)),
+                                     f'"{target}", which is not the name of a right',
+                                     f"one of: {', '.join(names)}",
+                                     f"did you mean {hint[0]}?" if hint else "check the spelling")
+            return
         for i, r in enumerate(rights):
             if isinstance(r, model.Defer) and r.requires:
                 self.bad(path + (Index(i), "requires"), f"requires on the defer right {r.name}",

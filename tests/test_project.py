@@ -335,9 +335,14 @@ def test_warnings(minimal_project_text):
     assert len(p.warnings) == 1 and "ignored" in p.warnings[0]
 
 
-def test_percentage_typo_warns(minimal_project_text):
-    p = loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 4"))
-    assert any("write 0.04" in w for w in p.warnings)
+def test_percentage_typo_is_refused_at_the_key(minimal_project_text):
+    """A rate of 4 is 4% written without its sign: refused at the key with the fraction
+    (before, a warning that the lattice's p-out-of-range error hid)."""
+    with pytest.raises(ProjectError) as err:
+        loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 4"))
+    assert "market.risk_free_rate" in str(err.value) and "did you mean 0.04?" in str(err.value)
+    assert loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 1")
+                 ).market.risk_free_rate == 1.0       # 100% a year is still a rate
 
 
 # ---- overrides -----------------------------------------------------------------------------------
