@@ -132,7 +132,10 @@ class Appraisal:
         }
 
     def summary(self):
-        """Headline table (pandas DataFrame): one row per line of the value bridge."""
+        """Headline table (pandas DataFrame): one row per line of the value bridge. Both
+        columns add up: ``value`` down the rights (their Shapley shares) gives the flexibility
+        value, and so does ``standalone_value`` down the rights (each valued alone) plus the
+        interaction between them."""
         import pandas as pd
 
         rows = [("Present value of the operating project", self.present_value, None),
@@ -140,8 +143,10 @@ class Appraisal:
                 ("Static NPV", self.static_npv, None)]
         rows += [(f"{r.name} ({r.type})", r.shapley_value, r.standalone_value)
                  for r in self.rights]
-        rows += [("Interaction between rights", self.interaction, None),
-                 ("Flexibility value", self.flexibility_value, None),
+        if self.rights:
+            rows.append(("Interaction between rights", None, self.interaction))
+        rows += [("Flexibility value", self.flexibility_value,
+                  self.flexibility_value if self.rights else None),
                  ("Expanded NPV", self.expanded_npv, None)]
         return pd.DataFrame(rows, columns=["item", "value", "standalone_value"]).set_index("item")
 

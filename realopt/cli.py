@@ -256,7 +256,9 @@ def _check_text(path, project, pl) -> str:
     lines.append("  warnings: none" if not warnings else "  warnings:")
     lines = [lines[0]] + [_wrap(x.strip(), "  ", "      ") for x in lines[1:]]
     lines += [_wrap(w, "    - ", "      ") for w in warnings]
-    return "\n".join(lines)
+    from .outputs.text import no_negative_zero
+
+    return no_negative_zero("\n".join(lines))
 
 
 # ------------------------------------------------------------------------------------------
@@ -354,7 +356,7 @@ def headline(a) -> str:
     money = " ".join(x for x in (p.currency, p.unit) if x) or "money units"
 
     def num(x):
-        return "" if x is None else f"{x:,.2f}"
+        return "" if x is None else _money(x)
 
     labels = [f"{r.name} ({r.type})" for r in a.rights]
     w = max([46] + [len(s) for s in labels])
@@ -365,12 +367,17 @@ def headline(a) -> str:
         return f"{label:<{w}}" + "".join(f"{c:>16}" for c in cols)
 
     out = [f"{p.name}", f"amounts in {money}, valued today", ""]
-    out.append(row("Present value of the operating project", "", num(a.present_value)))
+    base = getattr(a, "base", "") or ""
+    if base:
+        out += [_wrap(f"Base project: {base}", "", "  "), ""]
+    se = getattr(a, "present_value_stderr", None)
+    out.append(row("Present value of the operating project", "", num(a.present_value))
+               + (f" \u00b1 {_money(se)} (standard error)" if se is not None else ""))
     out.append(row("Investment (present value)", "", num(-a.investment_pv)))
     out.append(row("Static NPV (commit now, no flexibility)", "", num(a.static_npv)))
     out.append("")
     if a.rights:
-        out.append(row("Right", "standalone", "Shapley share"))
+        out.append(row("Right", "value alone", "Shapley share"))
         for label, r in zip(labels, a.rights):
             out.append(row(label, num(r.standalone_value), num(r.shapley_value)))
         out.append(row("Interaction between the rights", num(a.interaction), ""))
@@ -379,6 +386,11 @@ def headline(a) -> str:
         out.append("No rights in the file: the expanded NPV is the static NPV.")
     out.append(row("Expanded NPV (static NPV + flexibility)", "", num(a.expanded_npv)))
     out.append("")
+    first = list(getattr(a, "headline_warnings", ()) or ())
+    if first:
+        out.append("Read these numbers with the following warnings:")
+        out += [_wrap(x, "  ! ", "    ") for x in first]
+        out.append("")
     if getattr(a, "decision_today", None):
         out.append(f"Decision today: {a.decision_today}")
     out.append(_wrap(f"Volatility: {_volatility_text(a)}", "", "  "))
@@ -394,7 +406,15 @@ def headline(a) -> str:
         out += ["", "Warnings:"]
         out += [_wrap(x, "  - ", "    ") for x in a.warnings]
     out += ["", _wrap(CAUTION, "", "")]
-    return "\n".join(out)
+    from .outputs.text import no_negative_zero
+
+    return no_negative_zero("\n".join(out))
+
+
+def _money(x: float) -> str:
+    """2 decimals with thousands separators; a tiny negative shows as 0.00, never -0.00."""
+    text = f"{x:,.2f}"
+    return "0.00" if text == "-0.00" else text
 
 
 def _volatility_text(a) -> str:

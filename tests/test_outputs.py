@@ -45,7 +45,7 @@ from realopt.model import (Contract, Defer, Expand, Investment, LatticeSpec, Mar
 from realopt.outputs import report as report_mod
 from realopt.outputs.report import MARKER, ReportError, write_report
 from realopt.outputs.sensitivity import DEFAULT_MOVES, analyse
-from realopt.outputs.tables import Fmt, inputs_rows
+from realopt.outputs.tables import Fmt, inputs_rows, no_negative_zero
 
 ROOT = Path(__file__).resolve().parents[1]
 DPI = 72            # small figures keep the tests quick; the format is the same at 300 dpi
@@ -137,6 +137,7 @@ def result_strings(a, s) -> list[str]:
     out = [a.decision_today, a.volatility_method, CAUTION, a.project.name, s.moves.describe(),
            f"realopt {realopt.__version__}"]
     out += list(a.warnings) + list(s.notes)
+    out += list(getattr(a, "headline_warnings", ())) + [getattr(a, "base", "") or ""]
     for r in a.rights:
         out += [r.name, r.rule, r.use_measure]
     for row in s.rows:
@@ -158,7 +159,7 @@ def allowed_tokens(a, s) -> set[str]:
         out |= {f.money(x), f.pct(x), f.pct(x, 2), f.number(x), f.year(x), f"{x:g}",
                 f"{x * 100:.3g}%", f"{x * 100:g}%"}
     for text in result_strings(a, s):
-        out |= set(NUMBER.findall(text))
+        out |= set(NUMBER.findall(text)) | set(NUMBER.findall(no_negative_zero(text)))
     return out
 
 
@@ -246,7 +247,8 @@ def test_csv_tables_hold_the_results_numbers_exactly(case):
     bridge = _csv(out, "value_bridge")
     summ = a.summary()
     assert list(bridge["item"]) == list(summ.index)
-    assert list(bridge["value"]) == list(summ["value"])
+    assert _same(bridge["value_or_shapley_share"], summ["value"])
+    assert _same(bridge["value_of_the_right_alone"], summ["standalone_value"])
     rights = _csv(out, "rights")
     assert list(rights["shapley_value"]) == [r.shapley_value for r in a.rights]
     assert list(rights["standalone_value"]) == [r.standalone_value for r in a.rights]
@@ -271,6 +273,54 @@ def test_csv_tables_hold_the_results_numbers_exactly(case):
     assert list(conv["expanded_npv"]) == list(s.convergence.expanded_npv)
 
 
+def _same(xs, ys, rel=0.0) -> bool:
+    """Equal lists of floats (to ``rel``), NaN (an empty cell) equal to NaN."""
+    xs, ys = [float(x) for x in xs], [float("nan") if y is None else float(y) for y in ys]
+    return len(xs) == len(ys) and all(
+        abs(x - y) <= rel * abs(y) or (math.isnan(x) and math.isnan(y)) for x, y in zip(xs, ys))
+
+
+def _headline_table(out):
+    """The first table of report.html (the headline numbers) as rows of (label, value or None,
+    value alone or None), read from the cells' exact data-value."""
+    page = (out / "report.html").read_text(encoding="utf-8")
+    table = page[page.index("<table>"):page.index("</table>")]
+    rows = []
+    for tr in re.findall(r"<tr[^>]*>(.*?)</tr>", table)[1:]:
+        cells = re.findall(r"<td([^>]*)>(.*?)</td>", tr)
+        vals = [float(m.group(1)) if (m := re.search(r'data-value="([^"]+)"', attrs)) else None
+                for attrs, _ in cells[1:]]
+        rows.append((html.unescape(cells[0][1]), *vals))
+    return page[page.index("<table>"):page.index("</thead>")], rows
+
+
+def test_the_value_table_adds_up_down_both_columns(case, tmp_path):
+    """Issue 8 item 4: reading down the Shapley column gives the flexibility value (the
+    interaction between the rights is not in it); the interaction sits beside the values of
+    the rights alone, which with it also add up to the flexibility value. Same in the CSV and
+    report.md. (An additive identity of Shapley shares: efficiency, common practice.)"""
+    a, s, out = case
+    head, rows = _headline_table(out)
+    assert "Shapley share" in head and "Value of the right alone" in head
+    by = {label: (v, alone) for label, v, alone in rows}
+    names = [f"{r.name} ({r.type})" for r in a.rights]
+    inter = by["Interaction between rights"]
+    assert inter[0] is None and inter[1] == a.interaction
+    flex = by["Flexibility value"]
+    assert flex == (a.flexibility_value, a.flexibility_value)
+    assert sum(by[n][0] for n in names) == pytest.approx(a.flexibility_value, abs=1e-9)
+    assert sum(by[n][1] for n in names) + inter[1] == pytest.approx(a.flexibility_value,
+                                                                     abs=1e-9)
+    bridge = _csv(out, "value_bridge").set_index("item")
+    assert math.isnan(bridge.loc["Interaction between rights", "value_or_shapley_share"])
+    assert bridge.loc[names, "value_or_shapley_share"].sum() == pytest.approx(
+        a.flexibility_value, abs=1e-9)
+    md = (out / "report.md").read_text(encoding="utf-8")
+    line = next(x for x in md.splitlines() if x.startswith("| Interaction between rights"))
+    cells = [c.strip() for c in line.strip("|").split("|")]
+    assert cells[1] == "" and cells[2] == Fmt(a.project).money(a.interaction)
+
+
 def test_results_json_is_the_contract(case):
     a, s, out = case
     from realopt.cli import to_json
@@ -286,8 +336,7 @@ def test_workbook_has_every_table(case):
     book = pd.read_excel(out / "tables.xlsx", sheet_name=None)
     stems = {p.stem for p in (out / "tables").glob("*.csv")}
     assert set(book) == stems
-    assert list(book["value_bridge"]["value"]) == pytest.approx(list(a.summary()["value"]),
-                                                                rel=1e-15)
+    assert _same(book["value_bridge"]["value_or_shapley_share"], a.summary()["value"], 1e-15)
 
 
 # ------------------------------------------------------------------------ self-contained HTML

@@ -404,7 +404,7 @@ def _draw_convergence(fig, a, s, f: Fmt):
     ax.xaxis.set_major_locator(FixedLocator(c.steps_per_year))
     ax.xaxis.set_minor_locator(NullLocator())
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.2f}"))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f.money(v)))
     ax.set_xlabel("Lattice steps per year (log scale)")
     ax.set_ylabel(f"Expanded NPV ({f.unit_label})")
     ax.legend(loc="best")

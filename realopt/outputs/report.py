@@ -26,10 +26,11 @@ from pathlib import Path
 from .. import CAUTION, __version__
 from ..errors import RealoptError
 from .sensitivity import DEFAULT_MOVES, Moves, analyse
-from .tables import (Fmt, breakeven_text, chance_by_year, csv_tables, inputs_rows,
-                     lattice_rows)
+from .tables import (ALONE_COLUMN, VALUE_COLUMN, Fmt, breakeven_text, chance_by_year,
+                     csv_tables, inputs_rows, lattice_rows, no_negative_zero)
 
 MARKER = ".realopt-report"
+WARN_HEAD = "Read these numbers with the following warnings:"
 PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
 CONVENTIONS = (
     "Years are counted from today (t = 0). Cash flows are paid at their dates; a decision at a "
@@ -340,15 +341,36 @@ class _Drawer:
 # ------------------------------------------------------------------------ shared content
 def _headline_rows(a):
     """(label, value, value alone) of the headline table: the Appraisal's own summary()."""
+    def val(x):
+        return None if x is None or x != x else float(x)
+
     df = a.summary()
-    return [(item, row["value"], None if row["standalone_value"] != row["standalone_value"]
-             else row["standalone_value"]) for item, row in df.iterrows()]
+    return [(item, val(row["value"]), val(row["standalone_value"]))
+            for item, row in df.iterrows()]
+
+
+def _headline_blocks(a, f: Fmt) -> list:
+    """What page one must say beside the headline numbers: the base project when it is not
+    the plain one, the standard error of a simulated V0, and the headline warnings."""
+    out = []
+    base = getattr(a, "base", "") or ""
+    if base:
+        out.append(("p", f"Base project: {base}"))
+    se = getattr(a, "present_value_stderr", None)
+    if se is not None:
+        out.append(("p", f"Present value of the operating project "
+                         f"{f.money_unit(a.present_value)} \u00b1 {f.money(se)} (standard "
+                         "error of the simulation estimate)."))
+    warn = list(getattr(a, "headline_warnings", ()) or ())
+    if warn:
+        out.append(("warn", warn))
+    return out
 
 
 def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
     facts = [("Window", f"years {f.year(r.window[0])} to {f.year(r.window[1])}, {r.exercise}"),
              ("Shapley share", f.money_unit(r.shapley_value)),
-             ("Value alone", f.money_unit(r.standalone_value))]
+             ("Value of the right alone", f.money_unit(r.standalone_value))]
     if r.use_years:
         facts.append((f"Chance of use by year {f.year(r.use_years[-1])}",
                       f"{f.pct(r.use_real_world[-1])} real-world, "
@@ -385,6 +407,7 @@ th, td { text-align: left; padding: 1.2mm 2mm; border-bottom: 1px solid %(grid)s
 th { border-bottom: 1.5px solid %(muted)s; font-weight: bold; }
 td.num, th.num { text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }
 tr.total td { font-weight: bold; border-top: 1.5px solid %(muted)s; }
+.headline-warnings ul { margin: 1mm 0 0; padding-left: 5mm; }
 .card { border: 1px solid %(grid)s; border-radius: 2mm; padding: 1mm 3mm 2mm; margin: 2mm 0; }
 .card p.rule { margin: 1mm 0; }
 .card table { font-size: 8.5pt; margin: 1mm 0 0; }
@@ -403,7 +426,7 @@ footer { margin-top: 8mm; font-size: 8.5pt; color: %(muted)s; }
 
 
 def _e(x) -> str:
-    return html.escape(str(x), quote=True)
+    return html.escape(no_negative_zero(str(x)), quote=True)
 
 
 def _num_td(x, text: str) -> str:
@@ -447,14 +470,19 @@ def _sections(b: Built):
     money = f.unit_label
     rows, totals = [], []
     for label, value, alone in _headline_rows(a):
-        rows.append((label, (value, f.money(value)),
+        rows.append((label, (value, f.money(value)) if value is not None else (None, ""),
                      (alone, f.money(alone)) if alone is not None else (None, "")))
         totals.append(label in ("Static NPV", "Expanded NPV"))
     out = []
-    out.append(("Decision today", [
-        ("decision", a.decision_today),
-        ("table", ["", f"Value ({money})", f"Right alone ({money})"], rows, (1, 2), totals),
-        ("figure", "value_bridge")]))
+    today = [("decision", a.decision_today)] + _headline_blocks(a, f)
+    today.append(("table", ["", f"{VALUE_COLUMN} ({money})", f"{ALONE_COLUMN} ({money})"],
+                  rows, (1, 2), totals))
+    if a.rights:
+        today.append(("note", "Reading down either column gives the flexibility value: the "
+                              "Shapley shares of the rights add up to it, and so do the "
+                              "rights' values alone plus the interaction between them."))
+    today.append(("figure", "value_bridge"))
+    out.append(("Decision today", today))
     card = [("p", "Each right's rule in plain words, read from the optimal exercise policy on "
                   "the lattice, with the numbers it rests on.")]
     card += [("card", r) for r in a.rights]
@@ -571,6 +599,9 @@ def _html_block(b: Built, blk) -> str:
         return f'<div class="caution">{_e(blk[1])}</div>'
     if kind == "list":
         return "<ul>" + "".join(f"<li>{_e(x)}</li>" for x in blk[1]) + "</ul>"
+    if kind == "warn":
+        return (f'<div class="caution headline-warnings"><b>{_e(WARN_HEAD)}</b><ul>'
+                + "".join(f"<li>{_e(x)}</li>" for x in blk[1]) + "</ul></div>")
     if kind == "figure":
         return _figure_html(b, blk[1])
     if kind == "table":
@@ -619,6 +650,8 @@ def render_markdown(b: Built) -> str:
                 out += [f"> {blk[1]}", ""]
             elif kind == "list":
                 out += [f"- {x}" for x in blk[1]] + [""]
+            elif kind == "warn":
+                out += [f"> **{WARN_HEAD}**", ">"] + [f"> - {x}" for x in blk[1]] + [""]
             elif kind == "figure":
                 chart = b.chart(blk[1])
                 out += [f"![{chart.title}](figures/{chart.slug}.png)", "",
@@ -630,7 +663,7 @@ def render_markdown(b: Built) -> str:
                 r = blk[1]
                 out += [f"### {r.name} ({r.type})", "", r.rule, "",
                         _md_table(["", ""], _right_facts(r, f)), ""]
-    return "\n".join(out).rstrip() + "\n"
+    return no_negative_zero("\n".join(out).rstrip() + "\n")
 
 
 # ------------------------------------------------------------------------ PDF
@@ -677,7 +710,7 @@ class _Pages:
     def text(self, x: float, txt: str, size=8.5, weight="normal", color="#222222",
              ha="left", width_chars=None):
         """A wrapped paragraph, one text object per page it spans."""
-        lines = textwrap.wrap(txt, width_chars or int(100 * 8.5 / size)) or [""]
+        lines = textwrap.wrap(no_negative_zero(txt), width_chars or int(100 * 8.5 / size)) or [""]
         h = LINE * size / 8.5
         while lines:
             self.need(h, self.b.pdf_pages[-1] if self.b.pdf_pages else "")
@@ -699,7 +732,7 @@ class _Pages:
         h_max = A4[1] - 2 * MARGIN - 1.4
         if h > h_max:
             w, h = w * h_max / h, h_max
-        return w, h, textwrap.wrap(f"{chart.title}. {chart.caption}", 112)
+        return w, h, textwrap.wrap(no_negative_zero(f"{chart.title}. {chart.caption}"), 112)
 
     def figure_need(self, chart) -> float:
         w, h, caption = self._figure_size(chart)
@@ -745,7 +778,7 @@ class _Pages:
         def cells(row, bold=False):
             out = []
             for k, c in enumerate(row):
-                t = c[1] if isinstance(c, tuple) else str(c)
+                t = no_negative_zero(c[1] if isinstance(c, tuple) else str(c))
                 chars = max(8, int(widths[k] * 72 / (size * (0.64 if bold else 0.56))))
                 out.append(textwrap.wrap(t, chars) or [""])
             return out
@@ -862,6 +895,11 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
         pg.text(MARGIN, blk[1], size=10.5, weight="bold")
         pg.gap()
     elif kind == "list":
+        for item in blk[1]:
+            pg.text(MARGIN, "- " + item, size=8.5)
+        pg.gap()
+    elif kind == "warn":
+        pg.text(MARGIN, WARN_HEAD, size=8.5, weight="bold", color="#c2661c")
         for item in blk[1]:
             pg.text(MARGIN, "- " + item, size=8.5)
         pg.gap()

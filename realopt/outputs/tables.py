@@ -15,6 +15,7 @@ import math
 import pandas as pd
 
 from ..model import Abandon, Contract, Defer, Expand, Switch
+from .text import no_negative_zero  # noqa: F401  (re-exported for the writers)
 
 
 class Fmt:
@@ -59,9 +60,16 @@ class Fmt:
 
 
 # --------------------------------------------------------------------------------------------
+VALUE_COLUMN = "Value; Shapley share for each right"
+ALONE_COLUMN = "Value of the right alone"
+
+
 def value_bridge(a) -> pd.DataFrame:
-    """The headline table: the Appraisal's own ``summary()``."""
-    return a.summary().reset_index()
+    """The headline table: the Appraisal's own ``summary()``, its columns named for what they
+    hold. Down ``value_or_shapley_share`` the rights add up to the flexibility value; down
+    ``value_of_the_right_alone`` the rights plus the interaction between them do too."""
+    return a.summary().reset_index().rename(columns={
+        "value": "value_or_shapley_share", "standalone_value": "value_of_the_right_alone"})
 
 
 def rights_table(a) -> pd.DataFrame:
