@@ -533,13 +533,25 @@ def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
 
 
 def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
+    """Best action per state on a reduced grid of dates and project values.
+
+    Columns: an even sample of ``n_times`` steps, plus one step of every run of consecutive
+    steps where an action is used that the sample would miss (a one-step bermudan date stays
+    on the map at any steps_per_year). Rows: log-spaced values covering the tree's central
+    band (3 standard deviations of ln V at each date, and around today's value over the whole
+    horizon), widened to hold the edge of every exercise region found (up to 8 standard
+    deviations out, and for an action used only farther out, its nearest node)."""
     grid, pol = sol.grid, sol.policy
     maps = []
-    steps = _sample_steps(grid.steps, limit=n_times)
-    lo = grid.log_v0 - 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
-    hi = grid.log_v0 + 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
-    values = np.exp(np.linspace(lo, hi, n_values))
-    lv = np.log(values)
+    step = math.log(grid.up / grid.down)
+    even = [int(i) for i in _sample_steps(grid.steps, limit=n_times)]
+    half = 3.0 * step * math.sqrt(max(grid.steps, 1)) / 2
+
+    def centre_sd(i):
+        v = grid.nodes_ex(i)
+        return (math.log(v[0]) + math.log(v[-1])) / 2 if v[0] > 0 else None, \
+            step * math.sqrt(max(i, 1)) / 2
+
     for s, runs in pol.runs.items():
         codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
@@ -547,7 +559,64 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}
-        codes = np.full((n_values, len(steps)), -1, dtype=np.int16)
+        # dates: every run of steps using an action gets at least one column
+        cols = set(even)
+        used_at: dict[int, list[int]] = {}
+        for i in sorted(runs):
+            for c in set(runs[i][1].tolist()) - {0}:
+                used_at.setdefault(int(c), []).append(i)
+        for ii in used_at.values():
+            run = [ii[0]]
+            for i in ii[1:] + [None]:
+                if i is not None and i == run[-1] + 1:
+                    run.append(i)
+                    continue
+                if not cols.intersection(run):
+                    cols.add(run[len(run) // 2])
+                if i is not None:
+                    run = [i]
+        steps = np.array(sorted(cols), dtype=int)
+        # values: the central band, widened to every exercise region's edge
+        lo, hi = grid.log_v0 - half, grid.log_v0 + half
+        for i in steps:
+            c, sd = centre_sd(int(i))
+            if c is not None:
+                lo, hi = min(lo, c - 3 * sd), max(hi, c + 3 * sd)
+        nearest: dict[int, float] = {}
+        shown: set[int] = set()
+        for i in sorted(runs):
+            act = pol.actions(s, i)
+            v = grid.nodes_ex(i)
+            c, sd = centre_sd(i)
+            if c is None:
+                continue
+            logs = np.log(v)
+            edge = np.zeros(i + 1, bool)
+            if i > 0:
+                diff = act[1:] != act[:-1]
+                edge[1:] |= diff
+                edge[:-1] |= diff
+            for code in set(act.tolist()) - {0}:
+                mine = act == code
+                far = np.abs(logs - c) > 8 * sd
+                ok = mine & edge & ~far
+                if ok.any():
+                    lo, hi = min(lo, float(logs[ok].min())), max(hi, float(logs[ok].max()))
+                    shown.add(code)
+                elif code not in shown:
+                    k = int(np.argmin(np.where(mine, np.abs(logs - c), np.inf)))
+                    d = float(logs[k])
+                    if code not in nearest or abs(d - c) < abs(nearest[code] - c):
+                        nearest[code] = d
+        for code, d in nearest.items():
+            if code not in shown:
+                lo, hi = min(lo, d), max(hi, d)
+        pad = 0.5 * step
+        lo, hi = lo - pad, hi + pad
+        n_v = int(min(800, max(n_values, math.ceil((hi - lo) / (0.45 * step)))))
+        lv = np.linspace(lo, hi, n_v)
+        values = np.exp(lv)
+        codes = np.full((n_v, len(steps)), -1, dtype=np.int16)
         for col, i in enumerate(steps):
             i = int(i)
             if i not in runs:
@@ -556,8 +625,7 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
             if not np.all(v > 0):
                 continue
             logs = np.log(v)
-            step = math.log(grid.up / grid.down)
-            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_values, int)
+            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_v, int)
             inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
             act = pol.actions(s, i)
             mapped = np.vectorize(lookup.get)(act) if act.size else act

@@ -32,6 +32,7 @@ import sys
 from dataclasses import asdict, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 from hypothesis import given, settings
@@ -599,3 +600,95 @@ def test_report_command_fails_cleanly(tmp_path, cli):
     r = cli("report", bad, "-o", tmp_path / "never")
     assert r.code == 1 and "Traceback" not in r.text
     assert not (tmp_path / "never").exists()
+
+
+# ------------------------------------------------------------------------ decision maps (issue 8)
+BERMUDAN_MILL = """
+project: {name: "Bermudan mill (invented figures)", currency: EUR, unit: million}
+market: {risk_free_rate: 0.04, discount_rate: 0.10}
+underlying:
+  cash_flows: {1: 8, 2: 10, 3: 11, 4: 11, 5: 10, 6: 9}
+  terminal_value: 30
+  volatility: 0.3
+investment: {cost: 50}
+lattice: {steps_per_year: 200}
+rights:
+  - {name: Add a press, type: expand, scale: 0.4, cost: 12, window: [1, 5],
+     exercise: bermudan, dates: [1, 2, 3, 4, 5]}
+  - {name: Sell the mill, type: abandon, salvage: {0: 30, 6: 12}, window: [0, 6]}
+"""
+
+
+@pytest.fixture(scope="module")
+def bermudan_200():
+    from realopt.project import loads
+
+    return realopt.appraise(loads(BERMUDAN_MILL))
+
+
+def _policy_regions(a):
+    """(state label, action label) of every action the recorded policy uses, read from a
+    fresh solve of the same project (the engine's own policy, not the map)."""
+    from realopt.appraisal import _Valuer
+    from realopt.lattice import solve
+    from realopt.rights import build_state_graph
+
+    v = _Valuer(a.project)
+    graph = build_state_graph(v.rights)
+    sol = solve(v.grid, graph, record=True)
+    out = set()
+    for s, runs in sol.policy.runs.items():
+        for starts, codes in runs.values():
+            for c in set(codes.tolist()) - {0}:
+                e = graph.edges[c - 1]
+                out.add((graph.states[s].label,
+                         e.right if e.kind != "switch" else f"{e.right}: {e.label}"))
+    return out
+
+
+def test_every_exercise_region_is_on_the_decision_maps_at_200_steps_a_year(bermudan_200):
+    """Issue 8 item 5: one-step-wide bermudan dates (1/200 of a year) and regions far below
+    today's value keep their cells on the map, and every threshold read from a state lies
+    inside the value axis of that state's map."""
+    a = bermudan_200
+    regions = _policy_regions(a)
+    assert ("operating", "Add a press") in regions and ("operating", "Sell the mill") in regions
+    maps = {dm.state: dm for dm in a.decision_maps}
+    for state, action in regions:
+        dm = maps[state]
+        k = dm.actions.index(action)
+        assert np.any(dm.codes == k), (state, action)
+    from realopt.appraisal import _Valuer, _plausible
+
+    grid = _Valuer(a.project).grid
+    for r in a.rights:
+        for t in r.thresholds:
+            dm = maps.get(t.state)
+            if not _plausible(grid, t):     # beyond 5 standard deviations: table only
+                continue
+            for b in (t.lower, t.upper):
+                if dm is not None and b is not None and not t.never:
+                    assert dm.values[0] <= b <= dm.values[-1], (r.name, t)
+    # each bermudan date has its own column (the even sample alone would miss most of them)
+    op = maps["operating"]
+    k = op.actions.index("Add a press")
+    dates = {round(float(t), 6) for t, col in zip(op.times, op.codes.T) if np.any(col == k)}
+    assert dates == {1.0, 2.0, 3.0, 4.0, 5.0}
+
+
+def test_one_step_dates_are_drawn_wide_enough_to_see(bermudan_200):
+    """The drawn map holds the fill of every action on it (pixels of that colour), and a
+    one-step date's column is at least MIN_COLUMN of the time axis wide."""
+    from realopt.outputs import figures, style
+
+    a = bermudan_200
+    chart = next(c for c in figures.charts(a, None) if c.slug.startswith("decision_map_1"))
+    _, rgb = figures.render(chart, dpi=100)
+    styles = figures._action_styles(a)
+    dm = a.decision_maps[0]
+    for label in dm.actions[1:]:
+        fill = styles[label][0]
+        want = np.array([int(fill[i:i + 2], 16) for i in (1, 3, 5)])
+        hits = np.all(np.abs(rgb.astype(int) - want) <= 2, axis=-1).sum()
+        assert hits > 60, (label, hits)
+    assert figures.MIN_COLUMN >= 0.01

@@ -232,11 +232,18 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
             continue
         ax.contourf(dm.times, dm.values, np.where(dm.codes == k, 1.0, 0.0), levels=[0.5, 1.5],
                     colors="none", hatches=[hatch], zorder=2)
+    thin = _thin_columns(ax, dm, looks, t_edges, v_edges)
     handles = [Patch(facecolor=looks[k][0], edgecolor=style.MUTED, hatch=looks[k][1],
                      label=_wrap(_action_text(a, lab), 34)) for k, lab in enumerate(dm.actions)]
     handles.append(Patch(facecolor="white", edgecolor=style.MUTED,
                          label=_wrap("no choice here (outside the rights' windows or the "
                                      "tree)", 34)))
+    if thin:
+        from matplotlib.lines import Line2D
+
+        handles.append(Line2D([], [], marker="v", markersize=3.5, color=style.INK,
+                              linestyle="none", label=_wrap("a single exercise date (its column "
+                                                            "drawn wider than one step)", 34)))
     for k_line, (what, word, pts, xs, ys) in enumerate(_threshold_lines(a, dm.state)):
         line, = ax.plot(xs, ys, color=style.INK, linewidth=1.1,
                         linestyle=style.DASHES[(k_line + 1) % len(style.DASHES)],
@@ -253,6 +260,44 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
     ax.set_ylabel(f"Project value ({f.unit_label}, log scale)")
     ax.grid(False)
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
+
+
+MIN_COLUMN = 0.012     # share of the time axis: the narrowest a date with an exercise is drawn
+
+
+def _thin_columns(ax, dm, looks, t_edges, v_edges):
+    """Dates whose column is narrower than MIN_COLUMN of the time axis (a one-step bermudan
+    date on a fine grid) and that hold an exercise are drawn again as bars of that width, fill
+    and hatch, above the mesh, with a tick on the top edge: they stay visible at any
+    steps_per_year."""
+    span = float(t_edges[-1] - t_edges[0]) or 1.0
+    widths = np.diff(t_edges)
+    typical = float(np.median(widths)) if widths.size else span
+    w = max(MIN_COLUMN * span, typical)
+    drawn = False
+    for col in np.flatnonzero(widths < min(w, 0.75 * typical)):
+        column = dm.codes[:, col]
+        if not np.any(column > 0):
+            continue
+        if any(0 <= c < dm.codes.shape[1] and widths[c] >= 0.75 * typical
+               and np.array_equal(dm.codes[:, c], column) for c in (col - 1, col + 1)):
+            continue                      # a wide neighbour shows the same decisions
+        t = float(dm.times[col])
+        start = 0
+        for r in range(1, len(column) + 1):
+            if r < len(column) and column[r] == column[start]:
+                continue
+            k = int(column[start])
+            if k > 0:
+                fill, hatch = looks[k]
+                ax.bar(t, v_edges[r] - v_edges[start], bottom=v_edges[start], width=w,
+                       color=fill, hatch=hatch or None, edgecolor="#555555", linewidth=0.3,
+                       zorder=3)
+            start = r
+        ax.plot([t], [1.0], marker="v", markersize=3.5, color=style.INK, linestyle="none",
+                transform=ax.get_xaxis_transform(), clip_on=False, zorder=5)
+        drawn = True
+    return drawn
 
 
 def _map_has_thresholds(a, dm) -> bool:
