@@ -692,3 +692,31 @@ def test_one_step_dates_are_drawn_wide_enough_to_see(bermudan_200):
         hits = np.all(np.abs(rgb.astype(int) - want) <= 2, axis=-1).sum()
         assert hits > 60, (label, hits)
     assert figures.MIN_COLUMN >= 0.01
+
+
+def test_switch_shows_chance_of_first_switch_and_mode_shares(tmp_path):
+    """Issue 8 item 6: a switch right's chance of use is the chance of having switched at
+    least once (it never falls) and, separately, the share of paths in each mode; each is
+    drawn and tabulated under its own label. Where the engine does not provide mode shares
+    yet, invented ones are attached to the result so the outputs can be checked."""
+    a = realopt.appraise(built_project())
+    r = next(x for x in a.rights if x.type == "switch")
+    if not getattr(r, "mode_shares", None):
+        n = len(r.use_years)
+        idle = (tuple(np.linspace(0.0, 0.3, n)), tuple(np.linspace(0.0, 0.4, n)))
+        run = tuple(tuple(1.0 - x for x in t) for t in idle)
+        object.__setattr__(r, "mode_shares", {"run": run, "idle": idle})
+    shares = r.mode_shares
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    assert (out / "figures" / "switch_modes.png").is_file()
+    table = _csv(out, "mode_shares")
+    got = table[table["mode"] == "idle"]
+    assert list(got["real_world"]) == list(shares["idle"][1])
+    assert list(got["risk_neutral"]) == list(shares["idle"][0])
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "Share of paths in each mode of a switch right" in page
+    assert "not the chance of having switched" in page
+    assert "Chance of having switched at least once by year" in page
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "Share of paths in mode &#x27;idle&#x27;" in page or "mode 'idle'" in md

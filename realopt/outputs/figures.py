@@ -17,7 +17,7 @@ import numpy as np
 
 from . import style
 from .sensitivity import SETTLED
-from .tables import Fmt, breakeven_text
+from .tables import Fmt, breakeven_text, mode_shares
 
 # matplotlib is imported through .style (Agg) and only inside this module's functions below.
 
@@ -342,14 +342,51 @@ def _draw_chance(fig, a, f: Fmt):
             xs, ys = r.use_years, np.asarray(getattr(r, attr)) * 100.0
             ax.plot(xs, ys, **style.line_style(k), marker=style.MARKERS[k % len(style.MARKERS)],
                     markevery=max(1, len(xs) // 8), markersize=3.5,
-                    label=_wrap(r.name + (" (in another mode)" if r.type == "switch" else ""),
-                                52))
+                    label=_wrap(r.name + _chance_note(r), 52))
         ax.set_title(title, fontsize=8.5, loc="left")
         ax.set_xlim(0, a.lattice.horizon)
         ax.set_ylim(-2, 102)
         ax.set_xlabel("Years from today")
     axes[0].set_ylabel("Chance the right has been used (%)")
     fig.legend(*axes[0].get_legend_handles_labels(), loc="outside lower center", ncols=2)
+
+
+def _chance_note(r) -> str:
+    """What a switch's line counts: switched at least once (results with mode shares), else
+    the older measure, the chance of being away from the start mode."""
+    if r.type != "switch":
+        return ""
+    return " (switched at least once)" if mode_shares(r) else " (in another mode)"
+
+
+def _draw_modes(fig, a, f: Fmt):
+    """One row per switch right: the share of paths in each mode over time, real-world on the
+    left, risk-neutral on the right, stacked (they add up to the chance of operating)."""
+    switches = [r for r in a.rights if mode_shares(r)]
+    axes = fig.subplots(len(switches), 2, sharex=True, sharey=True, squeeze=False)
+    for row, r in zip(axes, switches):
+        shares = mode_shares(r)
+        xs = np.asarray(r.use_years)
+        for ax, pick, title in ((row[0], 1, "real-world"), (row[1], 0, "risk-neutral")):
+            ys = [np.asarray(shares[m][pick]) * 100.0 for m in shares]
+            polys = ax.stackplot(xs, *ys, labels=list(shares), linewidth=0.4,
+                                 edgecolor="white",
+                                 colors=[style.FILLS[1 + k % (len(style.FILLS) - 1)]
+                                         for k in range(len(ys))])
+            for k, poly in enumerate(polys):
+                poly.set_hatch(style.HATCHES[1 + k % (len(style.HATCHES) - 1)])
+            ax.set_title(_wrap(f"{r.name}: {title}", 48), fontsize=8.5, loc="left")
+            ax.set_xlim(0, a.lattice.horizon)
+            ax.set_ylim(0, 100)
+        row[0].set_ylabel("Chance of being in mode (%)")
+        row[1].legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0,
+                      title="mode", title_fontsize=7.5)
+    for ax in axes[-1]:
+        ax.set_xlabel("Years from today")
+
+
+def _modes_height(a) -> float:
+    return 0.4 + 2.1 * sum(1 for r in a.rights if mode_shares(r))
 
 
 # ------------------------------------------------------------------------ value fan
@@ -603,8 +640,16 @@ def charts(a, s) -> list[Chart]:
             "chance_of_use", "Chance that each right has been used",
             "Read the chance that each right has been used by each date: on the left under the "
             "real-world drift (what to expect), on the right under the risk-neutral measure "
-            "used for valuation (not a forecast).",
+            "used for valuation (not a forecast)." + _switch_caption(a),
             2.8 + 0.22 * math.ceil(len(a.rights) / 2), lambda fig: _draw_chance(fig, a, f)))
+    if any(mode_shares(r) for r in a.rights):
+        out.append(Chart(
+            "switch_modes", "Share of paths in each mode of a switch right",
+            "Read the chance of being in each mode on each date, on the left under the "
+            "real-world drift, on the right risk-neutral; the bands add up to the chance that "
+            "the project is operating (invested and not abandoned). The chance-of-use figure "
+            "shows instead the chance of having switched at least once, which never falls.",
+            _modes_height(a), lambda fig: _draw_modes(fig, a, f)))
     out.append(Chart(
         "value_fan", "Project value fan (real-world)",
         "Percentile bands of project value over time under the real-world drift, from today's "
@@ -636,6 +681,17 @@ def charts(a, s) -> list[Chart]:
             2.8, lambda fig: _draw_convergence(fig, a, s, f)))
     out.append(_states_chart(a, f))
     return out
+
+
+def _switch_caption(a) -> str:
+    sw = [r for r in a.rights if r.type == "switch"]
+    if not sw:
+        return ""
+    if all(mode_shares(r) for r in sw):
+        return (" A switch right counts as used once it has left its start mode at least once "
+                "(the line never falls); where each path is on each date is in the figure of "
+                "mode shares.")
+    return " A switch right's line is the chance of being in a mode other than its start mode."
 
 
 def _states_chart(a, f: Fmt) -> Chart:

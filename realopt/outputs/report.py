@@ -27,7 +27,8 @@ from .. import CAUTION, __version__
 from ..errors import RealoptError
 from .sensitivity import DEFAULT_MOVES, Moves, analyse
 from .tables import (ALONE_COLUMN, VALUE_COLUMN, Fmt, breakeven_text, chance_by_year,
-                     csv_tables, inputs_rows, lattice_rows, no_negative_zero)
+                     csv_tables, inputs_rows, lattice_rows, mode_share_years, mode_shares,
+                     no_negative_zero)
 
 MARKER = ".realopt-report"
 WARN_HEAD = "Read these numbers with the following warnings:"
@@ -372,11 +373,46 @@ def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
              ("Shapley share", f.money_unit(r.shapley_value)),
              ("Value of the right alone", f.money_unit(r.standalone_value))]
     if r.use_years:
-        facts.append((f"Chance of use by year {f.year(r.use_years[-1])}",
+        what = ("Chance of having switched at least once by year" if r.type == "switch"
+                and mode_shares(r) else "Chance of use by year")
+        facts.append((f"{what} {f.year(r.use_years[-1])}",
                       f"{f.pct(r.use_real_world[-1])} real-world, "
                       f"{f.pct(r.use_risk_neutral[-1])} risk-neutral"))
+        for m, (rn, rw) in mode_shares(r).items():
+            facts.append((f"Share of paths in mode '{m}' at year {f.year(r.use_years[-1])}",
+                          f"{f.pct(rw[-1])} real-world, {f.pct(rn[-1])} risk-neutral"))
     facts.append(("What the chance counts", r.use_measure))
     return facts
+
+
+def _mode_share_blocks(a, f: Fmt) -> list:
+    """For each switch right with mode shares: a table of the share of paths in each mode at
+    each whole year, real-world and risk-neutral, labelled for what it counts."""
+
+    out = []
+    for r in a.rights:
+        shares = mode_shares(r)
+        if not shares:
+            continue
+        modes = list(shares)
+        picks = mode_share_years(r)
+        if not picks:
+            continue
+        out.append(("p", f"{r.name}: share of paths in each mode on each date (the project "
+                         "invested and not abandoned), real-world and risk-neutral. This is "
+                         "where the paths are, not the chance of having switched:"))
+        rows = []
+        for k in picks:
+            row = [f.year(r.use_years[k])]
+            for m in modes:
+                rn, rw = shares[m][0][k], shares[m][1][k]
+                row += [(rw, f.pct(rw)), (rn, f.pct(rn))]
+            rows.append(row)
+        heads = ["Year"]
+        for m in modes:
+            heads += [f"{m}, real-world", f"{m}, risk-neutral"]
+        out.append(("table", heads, rows, tuple(range(1, len(heads))), None))
+    return out
 
 
 def _files_text() -> str:
@@ -501,6 +537,7 @@ def _sections(b: Built):
                                               for n in names])
             card.append(("table", ["Year"] + names, rows, tuple(range(1, len(names) + 1)),
                          None))
+    card += _mode_share_blocks(a, f)
     out.append(("Decision rule card", card))
     when = [("figure", x) for x in slugs if x.startswith("decision_map_")]
     from .figures import single_action_states
@@ -510,7 +547,8 @@ def _sections(b: Built):
         when.append(("note", "No decision map is drawn for " + "; ".join(
             f"\u201c{q}\u201d" for q in quiet) + ": no right is worth using from that state at "
             "any node of the lattice."))
-    when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use") if x in slugs]
+    when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use", "switch_modes")
+             if x in slugs]
     out.append(("When to use each right", when))
     out.append(("Uncertainty in project value", [("figure", "value_fan")]))
     yield from out
