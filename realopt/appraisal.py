@@ -547,10 +547,18 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     even = [int(i) for i in _sample_steps(grid.steps, limit=n_times)]
     half = 3.0 * step * math.sqrt(max(grid.steps, 1)) / 2
 
+    log_down = math.log(grid.down)
+
+    def first_log(i):
+        """ln of the lowest node's value at step i after the date's flow (None: all zero)."""
+        d = float(grid.delta[i])
+        if d >= 1.0:
+            return None
+        return grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log1p(-d)
+
     def centre_sd(i):
-        v = grid.nodes_ex(i)
-        return (math.log(v[0]) + math.log(v[-1])) / 2 if v[0] > 0 else None, \
-            step * math.sqrt(max(i, 1)) / 2
+        b = first_log(i)
+        return (None if b is None else b + i * step / 2), step * math.sqrt(max(i, 1)) / 2
 
     for s, runs in pol.runs.items():
         codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
@@ -559,12 +567,41 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}
+        # one pass over the run-length codes (a few runs per step, no node arrays): the
+        # steps each action is used at, and the edges of its regions in ln V
+        used_at: dict[int, list[int]] = {}
+        edges_at: list[float] = []
+        shown: set[int] = set()
+        nearest: dict[int, tuple[float, float]] = {}
+        for i in sorted(runs):
+            starts, codes = runs[i]
+            starts, codes = starts.tolist(), codes.tolist()
+            if not any(codes):
+                continue
+            b = first_log(i)
+            c, sd = centre_sd(i)
+            n_runs = len(codes)
+            for k, code in enumerate(codes):
+                if not code:
+                    continue
+                lst = used_at.setdefault(int(code), [])
+                if not lst or lst[-1] != i:
+                    lst.append(i)
+                if b is None:
+                    continue
+                first, last = starts[k], (starts[k + 1] - 1 if k + 1 < n_runs else i)
+                inner = ([first] if k > 0 else []) + ([last] if k + 1 < n_runs else [])
+                near = [b + j * step for j in inner if abs(b + j * step - c) <= 8 * sd]
+                if near:
+                    edges_at += near
+                    shown.add(code)
+                elif code not in shown:
+                    j = min(last, max(first, round((c - b) / step)))
+                    x = b + j * step
+                    if code not in nearest or abs(x - c) < nearest[code][0]:
+                        nearest[code] = (abs(x - c), x)
         # dates: every run of steps using an action gets at least one column
         cols = set(even)
-        used_at: dict[int, list[int]] = {}
-        for i in sorted(runs):
-            for c in set(runs[i][1].tolist()) - {0}:
-                used_at.setdefault(int(c), []).append(i)
         for ii in used_at.values():
             run = [ii[0]]
             for i in ii[1:] + [None]:
@@ -582,35 +619,11 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
             c, sd = centre_sd(int(i))
             if c is not None:
                 lo, hi = min(lo, c - 3 * sd), max(hi, c + 3 * sd)
-        nearest: dict[int, float] = {}
-        shown: set[int] = set()
-        for i in sorted(runs):
-            act = pol.actions(s, i)
-            v = grid.nodes_ex(i)
-            c, sd = centre_sd(i)
-            if c is None:
-                continue
-            logs = np.log(v)
-            edge = np.zeros(i + 1, bool)
-            if i > 0:
-                diff = act[1:] != act[:-1]
-                edge[1:] |= diff
-                edge[:-1] |= diff
-            for code in set(act.tolist()) - {0}:
-                mine = act == code
-                far = np.abs(logs - c) > 8 * sd
-                ok = mine & edge & ~far
-                if ok.any():
-                    lo, hi = min(lo, float(logs[ok].min())), max(hi, float(logs[ok].max()))
-                    shown.add(code)
-                elif code not in shown:
-                    k = int(np.argmin(np.where(mine, np.abs(logs - c), np.inf)))
-                    d = float(logs[k])
-                    if code not in nearest or abs(d - c) < abs(nearest[code] - c):
-                        nearest[code] = d
-        for code, d in nearest.items():
+        if edges_at:
+            lo, hi = min(lo, min(edges_at)), max(hi, max(edges_at))
+        for code, (_, x) in nearest.items():
             if code not in shown:
-                lo, hi = min(lo, d), max(hi, d)
+                lo, hi = min(lo, x), max(hi, x)
         pad = 0.5 * step
         lo, hi = lo - pad, hi + pad
         n_v = int(min(800, max(n_values, math.ceil((hi - lo) / (0.45 * step)))))

@@ -133,10 +133,16 @@ def _excess(plan, memory, extra_solves: float = 0.0) -> list[str]:
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:
         out.append(f"about {_bytes(plan.memory_bytes)} of memory (this machine has "
                    f"{_bytes(memory)} available)")
-    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    seconds = _seconds_with(plan, extra_solves)
     if seconds > TIME_LIMIT:
         out.append(f"about {_seconds(seconds)} (the limit is {_seconds(TIME_LIMIT)})")
     return out
+
+
+def _seconds_with(plan, extra_solves: float) -> float:
+    """The plan's time estimate plus ``extra_solves`` solves of the whole project."""
+    one = getattr(plan, "solve_seconds", 0.0) or plan.seconds_estimate / max(1, plan.solves)
+    return plan.seconds_estimate + extra_solves * one
 
 
 def guard_message(project, plan, extra_solves: float = 0.0) -> str | None:
@@ -164,7 +170,7 @@ def _smaller_steps(project, plan, memory, extra_solves: float = 0.0) -> int | No
 
     spy = project.lattice.steps_per_year
     ratio = 1.0
-    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    seconds = _seconds_with(plan, extra_solves)
     if seconds > TIME_LIMIT:
         ratio = min(ratio, (TIME_LIMIT / seconds) ** 0.5)
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:

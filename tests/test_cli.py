@@ -245,7 +245,7 @@ def test_demo_appraise_prints_the_headline_table(demo_projects, cli, engine):
         assert res.code == 0, res.text
         _no_traceback(res)
         proj = realopt.load_project(p)
-        for text in ("Present value of the operating project", "Static NPV", "standalone",
+        for text in ("Present value of the operating project", "Static NPV", "value alone",
                      "Shapley share", "Interaction", "Expanded NPV", proj.name,
                      f"{proj.currency} {proj.unit}", "When to use each right"):
             assert text in res.out, (p.name, text)
@@ -357,6 +357,41 @@ def test_guard_refuses_a_run_beyond_the_machine_and_names_a_smaller_step(cli, re
     monkeypatch.setattr(cli_module, "TIME_LIMIT", 1e9)
     res = cli("appraise", p, "--steps-per-year", "400", "--allow-large", "--json")
     assert res.code == 0, res.text
+
+
+FOUR_RIGHTS = """
+project: {name: "Four rights (invented figures)"}
+market: {risk_free_rate: 0.04, discount_rate: 0.09}
+underlying:
+  cash_flows: {1: 8, 2: 9, 3: 10, 4: 10, 5: 10, 6: 10, 7: 10, 8: 10, 9: 10, 10: 10}
+  terminal_value: 40
+  volatility: 0.3
+investment: {cost: 60}
+lattice: {steps_per_year: 1000}
+rights:
+  - {name: Wait, type: defer, window: [0, 2]}
+  - {name: Grow, type: expand, window: [2, 4], scale: 0.3, cost: 10, requires: [Wait]}
+  - {name: Shrink, type: contract, window: [3, 8], scale: 0.3, savings: 8}
+  - {name: Sell, type: abandon, window: [5, 10], salvage: 15}
+"""
+
+
+def test_time_estimate_costs_each_distinct_subset_with_its_own_states(engine):
+    """Issue 8 item 9: the estimate was several times too pessimistic at 1,000-2,000 steps a
+    year because it charged every one of the 2^n subset solves with all of the project's
+    states. Subsets that leave the same rights usable are solved once (the appraisal caches
+    them), and a subset's solve costs its own states. Measured ratios: bench_plan.py."""
+    from realopt.lattice import NODE_SECONDS, plan
+    from realopt.project import loads
+
+    pl = plan(loads(FOUR_RIGHTS))
+    # 15 non-empty subsets; the 4 holding Grow without Wait use the same rights as without Grow
+    assert pl.solves == 11
+    nodes = (pl.steps + 1) * (pl.steps + 2) / 2
+    live = pl.states - 1                               # every state but 'abandoned'
+    charged_all = NODE_SECONDS * nodes * live * (2 ** 4)
+    assert pl.seconds_estimate < 0.8 * charged_all + pl.solve_seconds * 10
+    assert pl.solve_seconds >= NODE_SECONDS * nodes * live
 
 
 def test_time_guard(cli, repo_root, monkeypatch, engine):
