@@ -244,6 +244,10 @@ def _check_text(path, project, pl) -> str:
         vol = f"volatility {u.volatility:.1%} a year"
     else:
         vol = f"volatility estimated from {u.volatility_estimate.method}"
+        if getattr(pl, "volatility", None) is not None:
+            vol += f": {pl.volatility:.1%} a year"
+            if getattr(pl, "volatility_stderr", None):
+                vol += f" (standard error {pl.volatility_stderr:.1%})"
     lines.append(f"  underlying: {what}; {vol}")
     for r in project.rights:
         lines.append(f"  right: {r.name} ({r.kind}, {r.exercise}, years {r.window[0]:g} to "

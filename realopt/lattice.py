@@ -87,6 +87,9 @@ class Plan:
     seconds_estimate: float
     warnings: tuple[str, ...]
     solve_seconds: float = 0.0     # one solve of the whole project (the unit of extra solves)
+    volatility: float | None = None        # the yearly volatility used (given or estimated)
+    volatility_stderr: float | None = None
+    volatility_method: str = ""
 
 
 def _event_dates(project: Project, res: ResolvedUnderlying):
@@ -473,4 +476,6 @@ def plan(project: Project) -> Plan:
                 down=grid.down, probability=grid.probability, states=len(graph.states),
                 solves=solves, memory_bytes=grid.memory_bytes(live), seconds_estimate=seconds,
                 warnings=tuple(project.warnings) + grid.warnings + tuple(structure_warnings(
-                    graph, res.last_flow_year, grid.horizon)), solve_seconds=full)
+                    graph, res.last_flow_year, grid.horizon)), solve_seconds=full,
+                volatility=res.volatility, volatility_stderr=res.volatility_stderr,
+                volatility_method=res.volatility_method)

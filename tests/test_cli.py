@@ -189,6 +189,48 @@ def test_help_teaches(cli):
     assert cli("--version").out.strip() == f"realopt {realopt.__version__}"
 
 
+def _help_examples():
+    """Every 'realopt ...' example line of the --help texts (top level and each command)."""
+    import argparse
+
+    parser = cli_module.build_parser()
+    texts = [parser.epilog or ""]
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            texts += [sp.epilog or "" for sp in action.choices.values()]
+    out = []
+    for text in texts:
+        for line in text.splitlines():
+            m = re.match(r"\s*(?:examples?:\s*)?realopt\s+(.*)$", line)
+            if m:
+                out.append(m.group(1).split(" > ")[0].strip())
+    return out
+
+
+def test_every_help_example_runs_on_the_demos(cli, repo_root, monkeypatch, tmp_path, engine):
+    """Issue 8 item 9: each example of the --help texts exits 0 on the demo projects (a shell
+    glob is expanded as the shell would; the report's writer is replaced by a stand-in that
+    records its call, the report itself being tested in test_outputs.py)."""
+    import glob
+    import shlex
+
+    from realopt.outputs import report as report_mod
+
+    examples = _help_examples()
+    assert len(examples) >= 8 and any(e.startswith("report ") for e in examples)
+    written = []
+    monkeypatch.setattr(report_mod, "write_report",
+                        lambda a, out, **kw: written.append((a.project.name, out)))
+    monkeypatch.chdir(repo_root)
+    for example in examples:
+        argv = []
+        for word in shlex.split(example):
+            argv += sorted(glob.glob(word)) if "*" in word else [word]
+        res = cli(*argv)
+        assert res.code == 0, (example, res.text)
+    assert len(written) == sum(1 for e in examples if e.startswith("report "))
+
+
 # ---- demo projects ---------------------------------------------------------------------------
 
 
@@ -504,3 +546,34 @@ def test_report_guard_counts_the_reports_extra_solves(cli, repo_root, monkeypatc
     res = cli("report", path, "-o", out)
     assert res.code == 1 and "the limit is" in res.err and "--allow-large" in res.err
     assert "Traceback" not in res.text and not out.exists()
+
+
+def test_check_shows_the_estimated_volatility(cli, repo_root, engine):
+    """Issue 8 item 9: `check` computes the simulated (or history) volatility to build the
+    lattice; it prints that figure, the one `appraise` uses, with its standard error."""
+    p = repo_root / "projects" / "flake_line.yaml"
+    a = realopt.appraise(realopt.load_project(p))
+    assert a.volatility_stderr is not None               # the demo's volatility is simulated
+    out = " ".join(cli("check", p).out.split())
+    assert f"estimated from simulation: {a.volatility:.1%} a year" in out
+    assert f"(standard error {a.volatility_stderr:.1%})" in out
+
+
+def test_headline_shows_base_stderr_and_headline_warnings(cli, repo_root, engine, monkeypatch):
+    """Page one of the terminal output carries the base project, V0's standard error and
+    the headline warnings when the result has them; tiny negatives print as 0.00."""
+    from dataclasses import replace as dc_replace
+
+    p = repo_root / "projects" / "coating_line.yaml"
+    a = realopt.appraise(realopt.load_project(p))
+    first = dc_replace(a.rights[0], shapley_value=-1e-12)
+    a = dc_replace(a, rights=(first,) + a.rights[1:])
+    object.__setattr__(a, "headline_warnings", ("Sell the line: proceeds after the last flow",))
+    object.__setattr__(a, "base", "the plant in its run mode")
+    object.__setattr__(a, "present_value_stderr", 0.123)
+    text = cli_module.headline(a)
+    head = text.split("When to use each right")[0]
+    assert "Base project: the plant in its run mode" in head
+    assert "\u00b1 0.12 (standard error)" in head
+    assert "Sell the line: proceeds after the last flow" in head
+    assert "-0.00" not in text
