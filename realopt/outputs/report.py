@@ -441,7 +441,9 @@ table { border-collapse: collapse; width: 100%%; margin: 2mm 0 3mm; font-size: 8
 th, td { text-align: left; padding: 1.2mm 2mm; border-bottom: 1px solid %(grid)s;
          vertical-align: top; overflow-wrap: anywhere; }
 th { border-bottom: 1.5px solid %(muted)s; font-weight: bold; }
-td.num, th.num { text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
+td.num { white-space: nowrap; }
+th.num { white-space: normal; overflow-wrap: anywhere; }
 tr.total td { font-weight: bold; border-top: 1.5px solid %(muted)s; }
 .headline-warnings ul { margin: 1mm 0 0; padding-left: 5mm; }
 .card { border: 1px solid %(grid)s; border-radius: 2mm; padding: 1mm 3mm 2mm; margin: 2mm 0; }
