@@ -636,7 +636,10 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
                 continue
             v = grid.nodes_ex(i)
             if not np.all(v > 0):
-                continue
+                act = pol.actions(s, i)
+                if np.all(v == 0) and act.size and np.all(act == act[0]):
+                    codes[:, col] = lookup[int(act[0])]   # value 0 at every node (after the
+                continue                                   # last flow): one action for all
             logs = np.log(v)
             j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_v, int)
             inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)

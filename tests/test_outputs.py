@@ -720,3 +720,22 @@ def test_switch_shows_chance_of_first_switch_and_mode_shares(tmp_path):
     assert "Chance of having switched at least once by year" in page
     md = (out / "report.md").read_text(encoding="utf-8")
     assert "Share of paths in mode &#x27;idle&#x27;" in page or "mode 'idle'" in md
+
+
+def test_first_pdf_page_is_full_with_five_rights(tmp_path):
+    """Issue 8 item 9: with five rights the headline table grew and the value bridge moved
+    to page 2, leaving page 1 half empty; the bridge now shrinks a little to stay beside the
+    headline numbers (the manifest records the share of each page's height used)."""
+    from realopt.model import Abandon
+
+    p = built_project()
+    p = replace(p, rights=p.rights + (Abandon(name="Sell the mill to a rival",
+                                              window=(1.0, 6.0),
+                                              salvage=Schedule.constant(35.0)),))
+    a = realopt.appraise(p)
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    manifest = json.loads((out / MARKER).read_text(encoding="utf-8"))
+    assert manifest["pdf_fill"][0] >= 0.75, manifest["pdf_fill"]
+    assert "Value bridge: static NPV to expanded NPV" not in manifest["pdf_pages"][:2]
+    assert len(manifest["pdf_fill"]) == len(manifest["pdf_pages"])

@@ -254,7 +254,13 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
     _today_marker(ax, a.present_value, f)
     cols = np.flatnonzero((dm.codes >= 0).any(axis=0))
     last = float(dm.times[cols[-1]]) if cols.size else float(dm.times[-1])
-    ax.set_xlim(0, min(float(dm.times[-1]), last + max(0.25, 0.04 * last)))
+    right = min(float(dm.times[-1]), last + max(0.25, 0.04 * last))
+    if cols.size:                          # the last column with a choice drawn whole
+        right = max(right, float(t_edges[cols[-1] + 1]))
+        if thin and cols[-1] == len(dm.times) - 1:
+            right = max(right, last + 0.5 * max(MIN_COLUMN * (t_edges[-1] - t_edges[0]),
+                                                float(np.median(np.diff(t_edges)))))
+    ax.set_xlim(0, right)
     _log_axis(ax, dm.values[0], dm.values[-1])
     ax.set_xlabel("Years from today")
     ax.set_ylabel(f"Project value ({f.unit_label}, log scale)")

@@ -32,6 +32,7 @@ from .tables import (ALONE_COLUMN, VALUE_COLUMN, Fmt, breakeven_text, chance_by_
 
 MARKER = ".realopt-report"
 WARN_HEAD = "Read these numbers with the following warnings:"
+MIN_FIGURE_SCALE = 0.72           # a figure shrinks this far to stay on a part-filled page
 PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
 CONVENTIONS = (
     "Years are counted from today (t = 0). Cash flows are paid at their dates; a decision at a "
@@ -56,6 +57,7 @@ class Built:
     fmt: Fmt
     charts: list                                       # those known so far, in reading order
     pdf_pages: list = field(default_factory=list)      # page headings, in order
+    pdf_fill: list = field(default_factory=list)       # share of each page's height used
     complete: bool = False                              # charts include the sensitivity ones
 
     def sens(self):
@@ -212,7 +214,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source) -> None:
                 "source": None if source is None else str(source),
                 "figures": [c.slug + ".png" for c in b.charts],
                 "tables": [t + ".csv" for t in tables], "xlsx": bool(xlsx),
-                "pdf_pages": b.pdf_pages}
+                "pdf_pages": b.pdf_pages, "pdf_fill": b.pdf_fill}
     (tmp / MARKER).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
 
 
@@ -732,6 +734,7 @@ class _Pages:
 
     def close(self):
         if self.fig is not None:
+            self.b.pdf_fill.append(round((A4[1] - MARGIN - self.y) / (A4[1] - 2 * MARGIN), 3))
             self._footer(self.fig)
             self.pdf.savefig(self.fig)
             self.fig = None
@@ -774,16 +777,35 @@ class _Pages:
             w, h = w * h_max / h, h_max
         return w, h, textwrap.wrap(no_negative_zero(f"{chart.title}. {chart.caption}"), 112)
 
-    def figure_need(self, chart) -> float:
+    def _shrink(self, chart) -> float:
+        """The scale (MIN_FIGURE_SCALE to 1) at which the figure and its caption fit in what
+        is left of this page; 0 when even the smallest does not (a new page then)."""
+        if self.fig is None:
+            return 0.0
         w, h, caption = self._figure_size(chart)
-        return h + 0.15 + LINE * len(caption) + 0.15
+        room = self.y - (MARGIN + 0.3) - (0.15 + LINE * len(caption) + 0.15)
+        if room >= h:
+            return 1.0
+        k = room / h
+        return k if k >= MIN_FIGURE_SCALE else 0.0
+
+    def figure_need(self, chart) -> float:
+        """The least height the figure needs to stay on this page (it may shrink to
+        MIN_FIGURE_SCALE where that keeps most of a page from being left empty)."""
+        w, h, caption = self._figure_size(chart)
+        return h * MIN_FIGURE_SCALE + 0.15 + LINE * len(caption) + 0.15
 
     def figure(self, chart):
-        """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it."""
+        """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it;
+        shrunk (down to MIN_FIGURE_SCALE, left-aligned) rather than leave most of a page
+        empty, else on a new page."""
         img = self.b.pixels(chart.slug)
         w, h, caption = self._figure_size(chart)
-        if self.fig is None or self.y - self.figure_need(chart) < MARGIN + 0.3:
+        k = self._shrink(chart)
+        if not k:
             self._new(chart.title)
+        else:
+            w, h = w * k, h * k
         ax = self.fig.add_axes((MARGIN / A4[0], (self.y - h) / A4[1], w / A4[0], h / A4[1]))
         ax.imshow(img, interpolation="none")
         ax.set_axis_off()
@@ -952,6 +974,8 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
             widths = [1.5, 2.1, full - 3.6]
         elif n == 2:
             widths = [2.4, full - 2.4]
+        elif n == 3 and tuple(num_cols) == (1, 2):          # the headline table
+            widths = [full - 2 * 1.9, 1.9, 1.9]
         else:
             first = full - 1.25 * (n - 1)
             widths = [first] + [1.25] * (n - 1)
