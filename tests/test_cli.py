@@ -412,8 +412,8 @@ investment: {cost: 60}
 lattice: {steps_per_year: 1000}
 rights:
   - {name: Wait, type: defer, window: [0, 2]}
-  - {name: Grow, type: expand, window: [2, 4], scale: 0.3, cost: 10, requires: [Wait]}
-  - {name: Shrink, type: contract, window: [3, 8], scale: 0.3, savings: 8}
+  - {name: Grow, type: expand, window: [2, 4], scale: 0.3, cost: 10}
+  - {name: Grow more, type: expand, window: [3, 8], scale: 0.3, cost: 12, requires: [Grow]}
   - {name: Sell, type: abandon, window: [5, 10], salvage: 15}
 """
 
@@ -427,7 +427,8 @@ def test_time_estimate_costs_each_distinct_subset_with_its_own_states(engine):
     from realopt.project import loads
 
     pl = plan(loads(FOUR_RIGHTS))
-    # 15 non-empty subsets; the 4 holding Grow without Wait use the same rights as without Grow
+    # 15 non-empty subsets; the 4 holding 'Grow more' without Grow use the same rights as
+    # without 'Grow more'
     assert pl.solves == 11
     nodes = (pl.steps + 1) * (pl.steps + 2) / 2
     live = pl.states - 1                               # every state but 'abandoned'
