@@ -554,7 +554,8 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
         d = float(grid.delta[i])
         if d >= 1.0:
             return None
-        return grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log1p(-d)
+        x = grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log1p(-d)
+        return x if math.isfinite(x) else None
 
     def centre_sd(i):
         b = first_log(i)
@@ -626,7 +627,8 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
                 lo, hi = min(lo, x), max(hi, x)
         pad = 0.5 * step
         lo, hi = lo - pad, hi + pad
-        n_v = int(min(800, max(n_values, math.ceil((hi - lo) / (0.45 * step)))))
+        span = (hi - lo) / (0.45 * step) if step > 0 else float("nan")
+        n_v = int(min(800, max(n_values, math.ceil(span)))) if math.isfinite(span) else n_values
         lv = np.linspace(lo, hi, n_v)
         values = np.exp(lv)
         codes = np.full((n_v, len(steps)), -1, dtype=np.int16)
