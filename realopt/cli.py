@@ -377,9 +377,10 @@ def headline(a) -> str:
         return f"{label:<{w}}" + "".join(f"{c:>16}" for c in cols)
 
     out = [f"{p.name}", f"amounts in {money}, valued today", ""]
-    base = getattr(a, "base", "") or ""
-    if base:
-        out += [_wrap(f"Base project: {base}", "", "  "), ""]
+    base = (getattr(a, "base", "") or "").strip()
+    if base and _base_is_not_plain(p):
+        text = base if base.lower().startswith("base project") else f"Base project: {base}"
+        out += [_wrap(text, "", "  "), ""]
     se = getattr(a, "present_value_stderr", None)
     out.append(row("Present value of the operating project", "", num(a.present_value))
                + (f" \u00b1 {_money(se)} (standard error)" if se is not None else ""))
@@ -419,6 +420,18 @@ def headline(a) -> str:
     from .outputs.text import no_negative_zero
 
     return no_negative_zero("\n".join(out))
+
+
+def _base_is_not_plain(project) -> bool:
+    """Whether a switch right starts in a mode other than the plain project (scale 1, no fixed
+    flow): then the headline says which base project every subset of rights values."""
+    for r in project.rights:
+        modes = getattr(r, "modes", None)
+        if modes and getattr(r, "start", None) is not None:
+            m = next((m for m in modes if m.name == r.start), None)
+            if m is not None and (m.scale != 1.0 or m.fixed != 0.0):
+                return True
+    return False
 
 
 def _money(x: float) -> str:

@@ -572,6 +572,9 @@ def test_headline_shows_base_stderr_and_headline_warnings(cli, repo_root, engine
     object.__setattr__(a, "headline_warnings", ("Sell the line: proceeds after the last flow",))
     object.__setattr__(a, "base", "the plant in its run mode")
     object.__setattr__(a, "present_value_stderr", 0.123)
+    assert not cli_module._base_is_not_plain(a.project)   # no switch: the base goes unsaid
+    assert "Base project" not in cli_module.headline(a)
+    monkeypatch.setattr(cli_module, "_base_is_not_plain", lambda project: True)
     text = cli_module.headline(a)
     head = text.split("When to use each right")[0]
     assert "Base project: the plant in its run mode" in head

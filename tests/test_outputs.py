@@ -736,6 +736,6 @@ def test_first_pdf_page_is_full_with_five_rights(tmp_path):
     out = tmp_path / "report"
     write_report(a, out, dpi=DPI)
     manifest = json.loads((out / MARKER).read_text(encoding="utf-8"))
-    assert manifest["pdf_fill"][0] >= 0.75, manifest["pdf_fill"]
-    assert "Value bridge: static NPV to expanded NPV" not in manifest["pdf_pages"][:2]
+    fill = manifest["pdf_fill"]
+    assert fill[0] >= 0.7 and fill[1] >= 0.7, fill          # no half-empty page at the start
     assert len(manifest["pdf_fill"]) == len(manifest["pdf_pages"])

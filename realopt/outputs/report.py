@@ -356,9 +356,10 @@ def _headline_blocks(a, f: Fmt) -> list:
     """What page one must say beside the headline numbers: the base project when it is not
     the plain one, the standard error of a simulated V0, and the headline warnings."""
     out = []
-    base = getattr(a, "base", "") or ""
-    if base:
-        out.append(("p", f"Base project: {base}"))
+    base = (getattr(a, "base", "") or "").strip()
+    if base and _base_is_not_plain(a.project):
+        out.append(("p", base if base.lower().startswith("base project")
+                    else f"Base project: {base}"))
     se = getattr(a, "present_value_stderr", None)
     if se is not None:
         out.append(("p", f"Present value of the operating project "
@@ -368,6 +369,20 @@ def _headline_blocks(a, f: Fmt) -> list:
     if warn:
         out.append(("warn", warn))
     return out
+
+
+def _base_is_not_plain(project) -> bool:
+    """Whether some switch right starts in a mode other than the plain project (scale 1, no
+    fixed yearly flow): then the base every subset values is not the file's cash flows alone
+    and page one says what it is."""
+    from ..model import Switch
+
+    for r in project.rights:
+        if isinstance(r, Switch):
+            m = next((m for m in r.modes if m.name == r.start), None)
+            if m is not None and (m.scale != 1.0 or m.fixed != 0.0):
+                return True
+    return False
 
 
 def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
@@ -746,6 +761,10 @@ class _Pages:
         fig.text(1 - MARGIN / A4[0], 0.45 / A4[1], f"page {n}", fontsize=7, color="#6b6b6b",
                  ha="right")
 
+    def room(self) -> float:
+        """Inches left on the current page (0 before the first)."""
+        return 0.0 if self.fig is None else self.y - (MARGIN + 0.3)
+
     def need(self, height: float, heading: str):
         if self.fig is None or self.y - height < MARGIN + 0.3:
             self._new(heading)
@@ -938,8 +957,9 @@ def write_pdf(b: Built, path: Path) -> None:
             first = blocks[0] if blocks else None
             keep = (pg.figure_need(b.chart(first[1]))
                     if first and first[0] == "figure" else 0.9)
-            pg.heading(heading, new_page=heading in ("Decision rule card",
-                                                     "Inputs and assumptions"), keep=keep)
+            fresh = heading == "Inputs and assumptions" or (
+                heading == "Decision rule card" and pg.room() < 0.4 * (A4[1] - 2 * MARGIN))
+            pg.heading(heading, new_page=fresh, keep=keep)
             for blk in blocks:
                 if blk[0] == "figure":
                     pg.figure(b.chart(blk[1]))
