@@ -724,8 +724,9 @@ def test_switch_shows_chance_of_first_switch_and_mode_shares(tmp_path):
 
 def test_first_pdf_page_is_full_with_five_rights(tmp_path):
     """Issue 8 item 9: with five rights the headline table grew and the value bridge moved
-    to page 2, leaving page 1 half empty; the bridge now shrinks a little to stay beside the
-    headline numbers (the manifest records the share of each page's height used)."""
+    to page 2, leaving page 1 half empty (0.45 of its height used); the bridge now shrinks a
+    little to stay beside the headline numbers, or where page-one warnings leave no room, the
+    rule card follows it on page 2 (the manifest records the share of each page used)."""
     from realopt.model import Abandon
 
     p = built_project()
@@ -737,5 +738,5 @@ def test_first_pdf_page_is_full_with_five_rights(tmp_path):
     write_report(a, out, dpi=DPI)
     manifest = json.loads((out / MARKER).read_text(encoding="utf-8"))
     fill = manifest["pdf_fill"]
-    assert fill[0] >= 0.7 and fill[1] >= 0.7, fill          # no half-empty page at the start
+    assert fill[0] >= 0.65 and fill[1] >= 0.7, fill         # no half-empty page at the start
     assert len(manifest["pdf_fill"]) == len(manifest["pdf_pages"])

@@ -616,7 +616,7 @@ def charts(a, s) -> list[Chart]:
         f"{money(a.expanded_npv)}; dashed outlines show each right valued alone (with any right "
         f"it requires), and the "
         f"interaction between the rights is {money(a.interaction)}.",
-        max(2.4, 0.42 * (len(a.rights) + 2) + 1.0), lambda fig: _draw_bridge(fig, a, f))]
+        max(2.4, 0.36 * (len(a.rights) + 2) + 1.0), lambda fig: _draw_bridge(fig, a, f))]
     flows = bool(_flow_years(a.project))
     k_map = 0
     for dm in a.decision_maps:
