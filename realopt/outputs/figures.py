@@ -375,18 +375,23 @@ def _draw_modes(fig, a, f: Fmt):
         xs = np.asarray(r.use_years)
         for ax, pick, title in ((row[0], 1, "real-world"), (row[1], 0, "risk-neutral")):
             ys = [np.asarray(shares[m][pick]) * 100.0 for m in shares]
-            polys = ax.stackplot(xs, *ys, labels=list(shares), linewidth=0.4,
-                                 edgecolor="white",
+            rest = np.clip(100.0 - np.sum(ys, axis=0), 0.0, 100.0)
+            polys = ax.stackplot(xs, *ys, rest,
+                                 labels=list(shares) + ["not operating (not yet invested, "
+                                                        "or abandoned)"],
+                                 linewidth=0.4, edgecolor="white",
                                  colors=[style.FILLS[1 + k % (len(style.FILLS) - 1)]
-                                         for k in range(len(ys))])
-            for k, poly in enumerate(polys):
+                                         for k in range(len(ys))] + ["#e9e9e9"])
+            for k, poly in enumerate(polys[:-1]):
                 poly.set_hatch(style.HATCHES[1 + k % (len(style.HATCHES) - 1)])
             ax.set_title(_wrap(f"{r.name}: {title}", 48), fontsize=8.5, loc="left")
             ax.set_xlim(0, a.lattice.horizon)
             ax.set_ylim(0, 100)
         row[0].set_ylabel("Chance of being in mode (%)")
-        row[1].legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0,
-                      title="mode", title_fontsize=7.5)
+        handles, labels = row[1].get_legend_handles_labels()
+        row[1].legend(handles, [_wrap(t, 18) for t in labels], loc="upper left",
+                      bbox_to_anchor=(1.01, 1.0), borderaxespad=0, title="mode",
+                      title_fontsize=7.5)
     for ax in axes[-1]:
         ax.set_xlabel("Years from today")
 
