@@ -657,9 +657,10 @@ def charts(a, s) -> list[Chart]:
         out.append(Chart(
             "switch_modes", "Share of paths in each mode of a switch right",
             "Read the chance of being in each mode on each date, on the left under the "
-            "real-world drift, on the right risk-neutral; the bands add up to the chance that "
-            "the project is operating (invested and not abandoned). The chance-of-use figure "
-            "shows instead the chance of having switched at least once, which never falls.",
+            "real-world drift, on the right risk-neutral; the grey band on top is the chance "
+            "that the project is not operating (not yet invested, or abandoned). The "
+            "chance-of-use figure shows instead the chance of having switched at least once, "
+            "which never falls.",
             _modes_height(a), lambda fig: _draw_modes(fig, a, f)))
     out.append(Chart(
         "value_fan", "Project value fan (real-world)",
