@@ -383,7 +383,7 @@ def headline(a) -> str:
         out += [_wrap(text, "", "  "), ""]
     se = getattr(a, "present_value_stderr", None)
     out.append(row("Present value of the operating project", "", num(a.present_value))
-               + (f" \u00b1 {_money(se)} (standard error)" if se is not None else ""))
+               + (f" \u00b1 {_money(se)} (standard error)" if se else ""))
     out.append(row("Investment (present value)", "", num(-a.investment_pv)))
     out.append(row("Static NPV (commit now, no flexibility)", "", num(a.static_npv)))
     out.append("")

@@ -361,7 +361,7 @@ def _headline_blocks(a, f: Fmt) -> list:
         out.append(("p", base if base.lower().startswith("base project")
                     else f"Base project: {base}"))
     se = getattr(a, "present_value_stderr", None)
-    if se is not None:
+    if se:                                 # 0 or None: V0 is exact
         out.append(("p", f"Present value of the operating project "
                          f"{f.money_unit(a.present_value)} \u00b1 {f.money(se)} (standard "
                          "error of the simulation estimate)."))
