@@ -23,6 +23,7 @@ any number) and the engine's public functions; no outside reference is needed fo
 from __future__ import annotations
 
 import hashlib
+import html
 import html.parser
 import json
 import math
@@ -740,3 +741,26 @@ def test_first_pdf_page_is_full_with_five_rights(tmp_path):
     fill = manifest["pdf_fill"]
     assert fill[0] >= 0.65 and fill[1] >= 0.7, fill         # no half-empty page at the start
     assert len(manifest["pdf_fill"]) == len(manifest["pdf_pages"])
+
+
+def test_page_one_shows_headline_warnings_base_and_stderr(tmp_path, monkeypatch):
+    """Issue 8: the warnings that bear on the headline numbers, the base project (where a
+    switch starts outside the plain project) and V0's standard error sit with the headline
+    numbers on page one of the HTML, Markdown and PDF (values attached here by hand where the
+    engine does not provide them yet)."""
+    a = realopt.appraise(built_project())
+    warning = "Close one hall: can be used at the last cash-flow year, check the savings"
+    object.__setattr__(a, "headline_warnings", (warning,))
+    object.__setattr__(a, "base", "Base project: the cash flows as given, with the mill idle")
+    object.__setattr__(a, "present_value_stderr", 0.25)
+    monkeypatch.setattr(report_mod, "_base_is_not_plain", lambda project: True)
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    first = page[:page.index("Decision rule card")]
+    assert html.escape(warning, quote=True) in first and "with the mill idle" in first
+    assert "\u00b1 0.25" in first
+    assert first.index(html.escape(warning, quote=True)) < first.index("<table>")
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert warning in md[:md.index("## Decision rule card")]
+    assert "Base project: Base project" not in page + md
