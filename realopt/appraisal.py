@@ -625,6 +625,32 @@ def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
     return verdict
 
 
+def _policy_runs(pol) -> dict:
+    """state -> step -> (starts, codes) as lists, every node covered (code 0 = carry on), read
+    from the recorded policy (run-length ``runs``, or the ``moves`` that list only the runs
+    where a right is used)."""
+    if hasattr(pol, "runs"):
+        return {s: {i: (list(map(int, st)), list(map(int, cd))) for i, (st, cd) in steps.items()}
+                for s, steps in pol.runs.items()}
+    out = {}
+    for s, steps in pol.moves.items():
+        per = out.setdefault(s, {})
+        for i, moves in steps.items():
+            starts, codes, pos = [], [], 0
+            for a, b, code in sorted(moves):
+                if a > pos:
+                    starts.append(pos)
+                    codes.append(0)
+                starts.append(int(a))
+                codes.append(int(code))
+                pos = int(b)
+            if pos <= i:
+                starts.append(pos)
+                codes.append(0)
+            per[i] = (starts, codes)
+    return out
+
+
 def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     """Best action per state on a reduced grid of dates and project values.
 
@@ -643,18 +669,19 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     log_down = math.log(grid.down)
 
     def first_log(i):
-        """ln of the lowest node's value at step i after the date's flow (None: all zero)."""
-        d = float(grid.delta[i])
-        if d >= 1.0:
+        """ln of the lowest node's value at step i as the decisions see it (None: all zero)."""
+        keep = grid.ex_fraction(i) if hasattr(grid, "ex_fraction") else 1.0 - float(
+            grid.delta[i])
+        if keep <= 0.0:
             return None
-        x = grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log1p(-d)
+        x = grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log(keep)
         return x if math.isfinite(x) else None
 
     def centre_sd(i):
         b = first_log(i)
         return (None if b is None else b + i * step / 2), step * math.sqrt(max(i, 1)) / 2
 
-    for s, runs in pol.runs.items():
+    for s, runs in _policy_runs(pol).items():
         codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
             (graph.edges[c - 1].right if graph.edges[c - 1].kind != "switch"
@@ -669,7 +696,6 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
         nearest: dict[int, tuple[float, float]] = {}
         for i in sorted(runs):
             starts, codes = runs[i]
-            starts, codes = starts.tolist(), codes.tolist()
             if not any(codes):
                 continue
             b = first_log(i)
