@@ -637,10 +637,12 @@ def _policy_regions(a):
     v = _Valuer(a.project)
     graph = build_state_graph(v.rights)
     sol = solve(v.grid, graph, record=True)
+    from realopt.appraisal import _policy_runs
+
     out = set()
-    for s, runs in sol.policy.runs.items():
+    for s, runs in _policy_runs(sol.policy).items():
         for starts, codes in runs.values():
-            for c in set(codes.tolist()) - {0}:
+            for c in set(codes) - {0}:
                 e = graph.edges[c - 1]
                 out.add((graph.states[s].label,
                          e.right if e.kind != "switch" else f"{e.right}: {e.label}"))
