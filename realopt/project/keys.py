@@ -3,7 +3,7 @@ thresholds above which the loader warns."""
 from __future__ import annotations
 
 VOLATILITY_WARN = 1.5             # yearly sigma above which the loader warns
-RATE_WARN = 1.0                   # a yearly rate above 100% is probably a percentage typo
+RATE_WARN = 1.0                   # a yearly rate above 100% is a percentage typo: refused
 
 TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights")
 PROJECT_KEYS = ("name", "currency", "unit")

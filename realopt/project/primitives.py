@@ -72,8 +72,22 @@ class Primitives:
     def warn(self, path, text):
         line, _, note = self._where(path, "value")
         where = f"{self.file}:{line}" if line else self.file
+        name = self._right_name(path)
+        if name and not text.startswith(name):
+            text = f"{name}: {text}"           # a warning names the right it concerns
         self.warnings.append(f"{where}: {format_path(path)}: {text}"
                              + (f" (from {note})" if note else ""))
+
+    def _right_name(self, path) -> str:
+        """The name of the right at rights[i] that ``path`` lies in ('' if none)."""
+        if len(path) < 2 or path[0] != "rights" or not isinstance(path[1], Index):
+            return ""
+        items = self.tree.data.get("rights") if isinstance(self.tree.data, dict) else None
+        if not isinstance(items, list) or not 0 <= int(path[1]) < len(items):
+            return ""
+        item = items[int(path[1])]
+        name = item.get("name") if isinstance(item, dict) else None
+        return name.strip() if isinstance(name, str) else ""
 
     # ---- shapes ----------------------------------------------------------------------------
 
