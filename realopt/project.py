@@ -31,6 +31,7 @@ from typing import Any, Mapping
 import yaml
 
 from . import model
+from . import project_simulation as simulation_keys
 from .errors import Problem, ProjectError
 
 MAX_FILE_BYTES = 1_000_000        # a project file is a few kilobytes; data belongs in a CSV
@@ -49,7 +50,8 @@ _FLOAT_TEXT = re.compile(r"^[-+]?(\d[\d_]*\.?\d*|\.\d+)[eE][-+]?\d+$")   # 1e-3 
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _MOVE = re.compile(r"^\s*(.+?)\s*->\s*(.+?)\s*$")
 
-TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights")
+TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights",
+            "valuation", "simulation")
 PROJECT_KEYS = ("name", "currency", "unit")
 MARKET_KEYS = ("risk_free_rate", "compounding", "discount_rate")
 CASH_FLOW_KEYS = ("cash_flows", "terminal_value", "flow_timing")
@@ -536,6 +538,8 @@ class _Builder:
         self.warnings: list[str] = []
         self._reported = {p.key for p in tree.problems}   # refused by the reader already
         self._typos: set = set()                          # (mapping path, key it suggests)
+        self.valuation, self.simulation_spec = "lattice", None   # see project_simulation
+        self.driver_names: dict = {}
 
     # ---- reporting -------------------------------------------------------------------------
 
@@ -689,6 +693,9 @@ class _Builder:
         expected = (f"{what}{sign}: a number, a mapping {{year: amount}} (linear between the "
                     "years, flat beyond), or {start: amount, growth: yearly rate}")
         ge = 0.0 if nonneg else None
+        if isinstance(value, str) and simulation_keys.is_simulation(self) \
+                and _float_text(value.strip().replace(" ", "")) is None:
+            return simulation_keys.money_formula(self, path, value, what)
         if isinstance(value, dict):
             if not value:
                 self.bad(path, "an empty mapping", expected)
@@ -773,6 +780,7 @@ class _Builder:
                 self.missing((key,), f"a {key} section ({what})",
                              "add it; see the project file reference in the README")
         sec = {k: top.get(k, _ABSENT) for k in TOP_KEYS}
+        simulation_keys.read_valuation(self, top)
         name, currency, unit = self.project_section(sec["project"])
         form = self.underlying_form(sec["underlying"])
         market = self.market(sec["market"], form)
@@ -780,13 +788,15 @@ class _Builder:
         underlying = self.underlying(sec["underlying"], form, lattice)
         investment = self.investment(sec["investment"], market)
         rights = self.rights(sec["rights"], lattice)
+        simulation_keys.finish(self, underlying, rights)
         if self.problems:
             raise ProjectError(sorted(self.problems, key=lambda p: (p.line or 0, p.column or 0)))
         self.cross_checks(market, underlying, investment, rights, lattice)
         return model.Project(name=name, market=market, underlying=underlying,
                              investment=investment, rights=rights, lattice=lattice,
                              currency=currency, unit=unit, source=self.file,
-                             warnings=tuple(self.warnings))
+                             warnings=tuple(self.warnings), valuation=self.valuation,
+                             simulation=self.simulation_spec)
 
     def project_section(self, value):
         path = ("project",)
@@ -907,7 +917,10 @@ class _Builder:
                 "evenly over the period before it)")
         vol_path = path + ("volatility",)
         explicit = lattice is not None and lattice.explicit
-        if "volatility" not in d or d["volatility"] is None:
+        simulation_keys.check_underlying(self, d, form)
+        if simulation_keys.is_simulation(self):
+            pass                       # the drivers' own volatilities drive the simulation
+        elif "volatility" not in d or d["volatility"] is None:
             if not explicit:
                 self.missing(vol_path, "the yearly volatility of the project value (0.28 for 28%) "
                              "or an estimate block", "add volatility: 0.3, or give explicit "
@@ -1054,6 +1067,7 @@ class _Builder:
             self.bad(path + ("years",), describe(y), "[first, last] cash-flow years, e.g. [1, 15]")
         drivers = self.drivers(path + ("drivers",), d["drivers"])
         names = {dr.name: dr for dr in drivers} if drivers else {}
+        self.driver_names = names
         corr = self.correlation(path + ("correlation",), d.get("correlation"), names)
         tax = 0.0
         if d.get("tax_rate") is not None:
@@ -1106,7 +1120,7 @@ class _Builder:
             return None
         need = {"gbm": ("start", "volatility"),
                 "mean_reverting": ("start", "long_run", "speed", "volatility")}[proc]
-        keys = ("process",) + need + (("drift",) if proc == "gbm" else ())
+        keys = ("process",) + need + (("drift",) if proc == "gbm" else ()) + ("risk_neutral",)
         self.mapping(path, spec, keys, f"a {proc} driver")
         vals = {}
         rules = {"start": ("today's value, above 0", {"gt": 0.0}),
@@ -1115,7 +1129,13 @@ class _Builder:
                  "drift": ("the yearly drift of its log (real-world, 0.02 for 2%)", {}),
                  "long_run": ("the long-run median it reverts to, above 0", {"gt": 0.0}),
                  "speed": ("the yearly speed of mean reversion, 0 or more", {"ge": 0.0})}
-        for k in keys[1:]:
+        rn = None
+        if spec.get("risk_neutral") is not None:
+            rn = simulation_keys.risk_neutral(self, path + ("risk_neutral",),
+                                              spec["risk_neutral"], proc)
+            if rn is None:
+                return None
+        for k in keys[1:-1]:
             what, bounds = rules[k]
             if k not in spec:
                 if k == "drift":
@@ -1127,7 +1147,7 @@ class _Builder:
             vals[k] = self.number(path + (k,), spec[k], what, **bounds)
         if any(v is None for v in vals.values()):
             return None
-        return model.Driver(name=name, process=proc, **vals)
+        return model.Driver(name=name, process=proc, risk_neutral=rn, **vals)
 
     def correlation(self, path, value, drivers):
         if value is None:
@@ -1477,10 +1497,17 @@ class _Builder:
             mp = modes_path + (mname,)
             mname = str(mname)
             spec = {} if spec is None else spec
-            if self.mapping(mp, spec, ("scale", "fixed"), "a mode: {scale: multiplier of the "
-                            "base cash flows, fixed: yearly flow in this mode}") is None:
+            if self.mapping(mp, spec, ("scale", "fixed", "cash_flow"), "a mode: {scale: "
+                            "multiplier of the base cash flows, fixed: yearly flow in this "
+                            "mode}") is None:
                 ok = False
                 continue
+            mcf = None
+            if spec.get("cash_flow") is not None:
+                mcf = simulation_keys.mode_cash_flow(self, mp + ("cash_flow",), spec["cash_flow"])
+                if mcf is None:
+                    ok = False
+                    continue
             sc = self.number(mp + ("scale",), spec.get("scale", 1.0), "the multiplier on the "
                              "base cash flows in this mode, 0 or more", ge=0.0)
             fx = self.number(mp + ("fixed",), spec.get("fixed", 0.0), "the fixed yearly flow in "
@@ -1488,7 +1515,7 @@ class _Builder:
             if sc is None or fx is None:
                 ok = False
             else:
-                modes.append(model.Mode(name=mname, scale=sc, fixed=fx))
+                modes.append(model.Mode(name=mname, scale=sc, fixed=fx, cash_flow=mcf))
         known = [str(m) for m in raw]
         start = known[0]
         if item.get("start") is not None:

@@ -1,0 +1,514 @@
+"""Least-squares Monte Carlo (Longstaff & Schwartz 2001) over the rights' state graph.
+
+Conventions (DESIGN.md, "Valuation on the drivers"): t in years from today; every flow is
+discounted at the risk-free rate (``market.compounding``); drivers follow their risk-neutral
+dynamics (realopt.simulation.paths). Cash flows: ``at_dates`` pays each cash-flow year's flow at
+that date, computed from the drivers there; ``spread`` pays, at each date, the cash-flow rate at
+the previous date times the part of the step inside the cash-flow years. The terminal value is
+paid with the last year's flow. Decisions at a date are taken after that date's flow; one decision
+per date (the state reached by exercising carries on to the next date).
+
+A state s pays ``mult_s * F_s(X) + fixed_s`` at a cash-flow date: F_s is the base formula times the
+product of the mode scales, or the own ``cash_flow`` formula of a switch mode that has one (which
+replaces scale x base flow + fixed for that switch; the terminal value is then not paid);
+``mult_s`` the product of the expand/contract factors. Switches absent from a subset of rights sit
+in their start mode (every subset values the same base project).
+
+Fitting (backward, on the fitting paths): at each date with open edges, the realised discounted
+value of carrying on in each state involved is regressed on a full polynomial of degree ``basis``
+in the standardised driver values (drivers with volatility > 0); the decision compares the fitted
+carry-on values of the source and targets, net of the money on exercise. Valuing (forward, on
+independent paths): the fitted policy is applied and the discounted flows and money summed along
+each path, which gives a low-biased estimate with an honest standard error, and the chances of
+use. All arrays are one per date over paths; loops run over dates, states and edges only.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from itertools import combinations_with_replacement
+
+import numpy as np
+
+from ..errors import ValuationError
+from ..formula import parse
+from ..model import Project, Switch
+from ..rights import StateGraph
+
+TOL = 1e-9
+
+
+# --- time grid --------------------------------------------------------------------------------
+
+def decision_times(right, spy: int) -> list[float]:
+    a, b = right.window
+    if right.exercise == "european":
+        return [b]
+    if right.exercise == "bermudan":
+        return list(right.dates)
+    k0, k1 = math.ceil(a * spy - 1e-9), math.floor(b * spy + 1e-9)
+    return [a, b] + [k / spy for k in range(k0, k1 + 1)]
+
+
+def build_times(project: Project) -> np.ndarray:
+    """0, every cash-flow year, every decision date (unique, sorted)."""
+    spec = project.simulation
+    first, last = project.underlying.drivers.years
+    ts = {0.0} | {float(y) for y in range(first, last + 1)}
+    for r in project.rights:
+        ts |= {float(t) for t in decision_times(r, spec.steps_per_year)}
+    out = np.array(sorted(ts))
+    keep = np.concatenate([[True], np.diff(out) > 1e-9])
+    return out[keep]
+
+
+def open_mask(right, times, spy: int) -> np.ndarray:
+    """Dates (indices of ``times``) at which ``right`` may be exercised."""
+    a, b = right.window
+    if right.exercise == "american":
+        return (times >= a - TOL) & (times <= b + TOL)
+    ds = np.array(decision_times(right, spy))
+    return np.any(np.abs(times[:, None] - ds[None, :]) < 1e-9, axis=1)
+
+
+# --- regression basis ---------------------------------------------------------------------------
+
+def exponents(d: int, degree: int) -> list[tuple[int, ...]]:
+    """Monomial exponents of total degree <= ``degree`` in ``d`` variables (constant first)."""
+    out = [(0,) * d]
+    for deg in range(1, degree + 1):
+        for combo in combinations_with_replacement(range(d), deg):
+            e = [0] * d
+            for i in combo:
+                e[i] += 1
+            out.append(tuple(e))
+    return out
+
+
+@dataclass
+class Basis:
+    """Polynomial in the standardised values of the uncertain drivers (indices ``cols``)."""
+
+    cols: list[int]
+    degree: int
+    exps: list = field(default_factory=list)
+
+    def __post_init__(self):
+        self.exps = exponents(len(self.cols), self.degree)
+
+    @property
+    def terms(self) -> int:
+        return len(self.exps)
+
+    def stats(self, x: np.ndarray):
+        """(mean, sd) of the regression variables at one date from the fitting paths x (d, n)."""
+        if not self.cols:
+            return np.zeros(0), np.zeros(0)
+        v = x[self.cols]
+        return v.mean(axis=1), v.std(axis=1)
+
+    def matrix(self, x: np.ndarray, st) -> np.ndarray:
+        """(n, terms) design matrix; constant only where the drivers do not vary (today)."""
+        n = x.shape[-1]
+        mu, sd = st
+        if not self.cols or not np.all(sd > 1e-12 * np.maximum(1.0, np.abs(mu))):
+            return np.ones((n, 1))
+        z = (x[self.cols] - mu[:, None]) / sd[:, None]
+        pw = [[np.ones(n)] for _ in self.cols]
+        for i in range(len(self.cols)):
+            for p in range(1, self.degree + 1):
+                pw[i].append(pw[i][-1] * z[i])
+        out = np.empty((n, self.terms))
+        for c, e in enumerate(self.exps):
+            col = np.ones(n)
+            for i, p in enumerate(e):
+                if p:
+                    col = col * pw[i][p]
+            out[:, c] = col
+        return out
+
+
+# --- the compiled problem -----------------------------------------------------------------------
+
+@dataclass
+class StateFlow:
+    key: str            # formula key: "base" or a mode formula text; "" = no operating flow
+    mult: float         # multiplier on that formula's value
+    fixed: float        # fixed yearly flow
+    tv: float           # multiplier on the terminal value
+
+
+class Problem:
+    """Everything the fit and the valuation share: dates, discounting, formulas, basis."""
+
+    def __init__(self, project: Project):
+        self.project = project
+        u = project.underlying
+        self.model = u.drivers
+        spec = project.simulation
+        self.spec = spec
+        self.times = build_times(project)
+        self.T = len(self.times)
+        self.disc = 1.0 / np.asarray(project.market.risk_free_growth(self.times), dtype=float)
+        first, last = self.model.years
+        self.first, self.last = first, last
+        self.timing = u.flow_timing
+        self.tv = float(u.terminal_value)
+        self.tax = float(self.model.tax_rate)
+        t = self.times
+        if self.timing == "spread":
+            lo, hi = np.maximum(t[:-1], first - 1.0), np.minimum(t[1:], float(last))
+            self.weight = np.concatenate([[0.0], np.maximum(0.0, hi - lo)])
+        else:
+            yrs = np.arange(first, last + 1, dtype=float)
+            self.weight = np.any(np.abs(t[:, None] - yrs[None, :]) < 1e-9, axis=1).astype(float)
+        self.tv_index = int(np.argmin(np.abs(t - last)))
+        self.formulas = {"base": parse(self.model.cash_flow)}
+        self.switches = [r for r in project.rights if isinstance(r, Switch)]
+        for sw in self.switches:
+            for m in sw.modes:
+                if m.cash_flow is not None:
+                    self.formulas.setdefault(m.cash_flow, parse(m.cash_flow))
+        self.stochastic = [d for d in self.model.drivers if d.process != "schedule"]
+        self.names = [d.name for d in self.stochastic]
+        self.schedules = {d.name: d.schedule for d in self.model.drivers
+                          if d.process == "schedule"}
+        cols = [i for i, d in enumerate(self.stochastic) if d.volatility > 0]
+        self.uncertain = bool(cols)
+        self.basis = Basis(cols, spec.basis)
+        self._money: dict = {}
+
+    # environment of the formulas at date k from driver values x (d, n)
+    def env(self, k: int, x: np.ndarray) -> dict:
+        e = {n: x[i] for i, n in enumerate(self.names)}
+        t = float(self.times[k])
+        for n, s in self.schedules.items():
+            e[n] = s.at(t)
+        return e
+
+    def formula_values(self, k: int, x: np.ndarray) -> dict:
+        e = self.env(k, x)
+        n = x.shape[-1]
+        out = {}
+        for key, f in self.formulas.items():
+            v = np.broadcast_to(np.asarray(f.evaluate(e), dtype=float), (n,))
+            if self.tax:
+                v = v - self.tax * np.maximum(v, 0.0)
+            if not np.all(np.isfinite(v)):
+                raise ValuationError(
+                    f"the cash-flow formula '{f.text}' gives a non-finite value (division by "
+                    f"zero, overflow or a power of a negative number) at year "
+                    f"{self.times[k]:g}; check its divisions and powers")
+            out[key] = v
+        return out
+
+    def state_flows(self, graph: StateGraph) -> list[StateFlow]:
+        """The flow description of each state of a subset's graph."""
+        sub = {r.name for r in graph.rights if isinstance(r, Switch)}
+        sub_switches = [r for r in graph.rights if isinstance(r, Switch)]
+        out = []
+        for s in graph.states:
+            if s.abandoned or not s.invested:
+                out.append(StateFlow("", 0.0, 0.0, 0.0))
+                continue
+            mult = 1.0
+            for r in graph.rights:
+                if r.name in s.used:
+                    mult *= (1.0 + r.scale) if r.kind == "expand" else (1.0 - r.scale)
+            current = dict(zip([r.name for r in sub_switches], s.modes))
+            scale, fixed, own = 1.0, 0.0, []
+            for sw in self.switches:
+                m = sw.mode(current[sw.name] if sw.name in sub else sw.start)
+                if m.cash_flow is not None:
+                    own.append(m.cash_flow)
+                else:
+                    scale *= m.scale
+                    fixed += m.fixed
+            if len(own) > 1:
+                raise ValuationError(
+                    "two switch modes with their own cash_flow are active together ("
+                    + " and ".join(own) + "); put those modes into one switch right")
+            if own:
+                out.append(StateFlow(own[0], mult, fixed, 0.0))
+            else:
+                out.append(StateFlow("base", mult * scale, fixed, mult * scale))
+        return out
+
+    def flows(self, k: int, x_prev: np.ndarray, x_now: np.ndarray, sflows) -> np.ndarray:
+        """(S, n) undiscounted flow of each state paid at date k (k >= 1)."""
+        n = x_now.shape[-1]
+        out = np.zeros((len(sflows), n))
+        w = self.weight[k]
+        tv = k == self.tv_index and self.tv != 0.0
+        if w == 0.0 and not tv:
+            return out
+        vals = self.formula_values(k - 1 if self.timing == "spread" else k,
+                                   x_prev if self.timing == "spread" else x_now) if w else {}
+        for s, f in enumerate(sflows):
+            if f.key == "":
+                continue
+            if w:
+                out[s] = w * (f.mult * vals[f.key] + f.fixed)
+            if tv:
+                out[s] += f.tv * self.tv
+        return out
+
+    def money(self, edge, k: int, x: np.ndarray):
+        """sign * amount received on exercising ``edge`` at date k (scalar or array over paths)."""
+        a = edge.amount
+        if a.formula is not None:
+            f = self._money.get(a.formula)
+            if f is None:
+                f = self._money[a.formula] = parse(a.formula)
+            v = np.asarray(f.evaluate(self.env(k, x)), dtype=float)
+            if not np.all(np.isfinite(v)):
+                raise ValuationError(f"the money formula '{a.formula}' of '{edge.right}' gives a "
+                                     f"non-finite value at year {self.times[k]:g}")
+            return edge.sign * v
+        return edge.sign * float(a.at(float(self.times[k])))
+
+
+# --- policy -------------------------------------------------------------------------------------
+
+@dataclass
+class Policy:
+    """Fitted carry-on regressions: ``beta[k][s]`` coefficients, ``stats[k]`` standardisation."""
+
+    graph: StateGraph
+    sflows: list
+    open_edges: dict          # k -> list of edge ids open at k
+    beta: dict                # k -> {state: coefficients}
+    stats: list               # per date (mean, sd) of the regression variables
+    in_sample: float          # fitted (high-biased) value at t = 0 of the initial state
+
+    def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
+        b = self.beta[k]
+        return {s: (np.zeros(B.shape[0]) if s not in b else B[:, :len(b[s])] @ b[s])
+                for s in states}
+
+
+def _sources(graph, edges):
+    by = {}
+    for e_id in edges:
+        by.setdefault(graph.edges[e_id].source, []).append(e_id)
+    return by
+
+
+def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
+        all_states: bool = False, progress=None) -> Policy:
+    """Backward induction on the fitting paths ``x`` (T, d, n): the policy for ``graph``.
+
+    ``all_states``: regress every live state at every date (for the dual upper bound)."""
+    S, n, T = len(graph.states), x.shape[-1], prob.T
+    sflows = prob.state_flows(graph)
+    dead = {s for s, st in enumerate(graph.states) if st.abandoned}
+    live = [s for s in range(S) if s not in dead]
+    open_edges = {}
+    for k in range(T):
+        ids = [i for i, e in enumerate(graph.edges) if open_by_right[e.right][k]]
+        if ids:
+            open_edges[k] = ids
+    beta: dict = {}
+    P = np.zeros((S, n))
+    for k in range(T - 1, -1, -1):
+        if progress:
+            progress()
+        if k < T - 1:
+            Y = P + prob.disc[k + 1] * prob.flows(k + 1, x[k], x[k + 1], sflows)
+        else:
+            Y = np.zeros((S, n))
+        ids = open_edges.get(k)
+        if not ids and not all_states:
+            P = Y
+            continue
+        needed = set(live) if all_states else set()
+        for e_id in ids or ():
+            e = graph.edges[e_id]
+            needed |= {e.source, e.target}
+        needed = sorted(needed - dead)
+        B = prob.basis.matrix(x[k], stats[k])
+        coef, *_ = np.linalg.lstsq(B, Y[needed].T, rcond=None)
+        beta[k] = {s: coef[:, j] for j, s in enumerate(needed)}
+        if not ids:
+            P = Y
+            continue
+        est = {s: B @ beta[k][s] for s in needed}
+        P = Y.copy()
+        for s, eids in _sources(graph, ids).items():
+            best = est[s]
+            realised = Y[s]
+            for e_id in eids:
+                e = graph.edges[e_id]
+                m = prob.money(e, k, x[k]) * prob.disc[k]
+                cand = (est[e.target] if e.target not in dead else 0.0) + m
+                better = cand > best
+                best = np.where(better, cand, best)
+                realised = np.where(better, Y[e.target] + m, realised)
+            P[s] = realised
+    return Policy(graph=graph, sflows=sflows, open_edges=open_edges, beta=beta, stats=stats,
+                  in_sample=float(P[graph.initial].mean()))
+
+
+@dataclass
+class Run:
+    """Forward pass of a policy: pathwise discounted value and where the paths went."""
+
+    values: np.ndarray        # (n,) discounted flows + money of the initial state's path
+    occupancy: np.ndarray     # (T, S) share of paths in each state after each date's decision
+    exercised: np.ndarray     # (T, E) share of paths taking each edge at each date
+
+
+def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
+    """New state per path after the decision at date k, and the money received (undiscounted)
+    and the edge taken (-1 none)."""
+    graph = pol.graph
+    dead = {s for s, st in enumerate(graph.states) if st.abandoned}
+    new = cur.copy()
+    money = np.zeros(cur.shape[0])
+    taken = np.full(cur.shape[0], -1)
+    for s, eids in _sources(graph, pol.open_edges[k]).items():
+        idx = np.flatnonzero(cur == s)
+        if idx.size == 0:
+            continue
+        xs = xk[:, idx]
+        B = prob.basis.matrix(xs, pol.stats[k])
+        targets = {graph.edges[e].target for e in eids} - dead
+        est = pol.estimates(prob, k, B, {s} | targets)
+        best = est[s]
+        choice = np.full(idx.size, -1)
+        cash = np.zeros(idx.size)
+        for e_id in eids:
+            e = graph.edges[e_id]
+            m = np.broadcast_to(prob.money(e, k, xs), (idx.size,))
+            cand = (est[e.target] if e.target not in dead else 0.0) + m * prob.disc[k]
+            better = cand > best
+            best = np.where(better, cand, best)
+            choice = np.where(better, e_id, choice)
+            cash = np.where(better, m, cash)
+        hit = choice >= 0
+        if hit.any():
+            tgt = np.array([graph.edges[c].target for c in choice[hit]])
+            new[idx[hit]] = tgt
+            money[idx[hit]] = cash[hit]
+            taken[idx[hit]] = choice[hit]
+    return new, money, taken
+
+
+def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progress=None) -> Run:
+    """Apply the fitted policy forward on paths ``x`` (independent of the fit)."""
+    graph = pol.graph
+    S, E, n, T = len(graph.states), len(graph.edges), x.shape[-1], prob.T
+    cur = np.full(n, graph.initial)
+    total = np.zeros(n)
+    occ = np.zeros((T, S)) if record else np.zeros((0, S))
+    exe = np.zeros((T, E)) if record else np.zeros((0, E))
+    cols = np.arange(n)
+    for k in range(T):
+        if progress:
+            progress()
+        if k > 0:
+            fl = prob.flows(k, x[k - 1], x[k], pol.sflows)
+            if fl.any():
+                total += prob.disc[k] * fl[cur, cols]
+        if k in pol.open_edges:
+            cur, money, taken = decide(prob, pol, k, x[k], cur)
+            total += prob.disc[k] * money
+            if record:
+                hit = taken >= 0
+                exe[k] = np.bincount(taken[hit], minlength=E)[:E] / n
+        if record:
+            occ[k] = np.bincount(cur, minlength=S)[:S] / n
+    return Run(values=total, occupancy=occ, exercised=exe)
+
+
+# --- dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) ------------------------------
+
+def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, seed: int,
+                progress=None) -> np.ndarray:
+    """Pathwise dual values on the ``outer`` paths (T, d, n): the upper bound is their mean.
+
+    Martingale: for each state s, M_s increments d(k+1) [flow_s(k+1) + V_s(k+1)] less their
+    conditional mean given date k, estimated from ``inner`` one-step draws per path, where
+    V_s(k) = max over the edges open at k of (fitted carry-on of the target + money), or the
+    fitted carry-on of s. Pathwise, the best sequence of states is then found by backward
+    induction along each path with the flows penalised by the increments of the state held
+    (Rogers 2007 for controlled chains). Any martingale gives an upper bound in expectation;
+    inner-sampling noise only raises it."""
+    from .paths import generator, one_step, one_step_mean
+
+    graph = pol.graph
+    S, n, T = len(graph.states), outer.shape[-1], prob.T
+    dead = {s for s, st in enumerate(graph.states) if st.abandoned}
+    live = [s for s in range(S) if s not in dead]
+    gen = generator(seed, "inner")
+
+    def value_fn(k, xk):
+        """(S, m) fitted value after the decision at date k, discounted to today."""
+        m = xk.shape[-1]
+        out = np.zeros((S, m))
+        if k == T - 1 and k not in pol.open_edges:
+            return out
+        B = prob.basis.matrix(xk, pol.stats[k])
+        est = pol.estimates(prob, k, B, set(live))
+        for s in live:
+            out[s] = est[s]
+        for s, eids in _sources(graph, pol.open_edges.get(k, [])).items():
+            best = out[s].copy()
+            for e_id in eids:
+                e = graph.edges[e_id]
+                cand = (est[e.target] if e.target not in dead else 0.0) + np.broadcast_to(
+                    prob.money(e, k, xk), (m,)) * prob.disc[k]
+                best = np.maximum(best, cand)
+            out[s] = best
+        return out
+
+    # increments dM[k] (S, n) for k = 1..T-1
+    Z = np.zeros((S, n))               # pathwise dual value after the decision at date k
+    incs = [None] * T
+    for k in range(1, T):
+        if progress:
+            progress()
+        xk0, xk1 = outer[k - 1], outer[k]
+        g1 = prob.disc[k] * prob.flows(k, xk0, xk1, pol.sflows) + value_fn(k, xk1)
+        # conditional mean from inner draws: (d, n*inner)
+        d = xk0.shape[0]
+        half = max(1, inner // 2)
+        z = gen.standard_normal((d, n, half))
+        z = np.concatenate([z, -z], axis=2).reshape(d, n * 2 * half)    # antithetic inner
+        m_in = 2 * half
+        x0r = np.repeat(xk0, m_in, axis=1)
+        x1r = one_step(dyn, prob.times[k - 1], prob.times[k], x0r, z)
+        gi = (prob.disc[k] * prob.flows(k, x0r, x1r, pol.sflows)
+              + value_fn(k, x1r)).reshape(S, n, m_in)
+        cond = gi.mean(axis=2)
+        if d and prob.uncertain:
+            # control variates: the drivers' own values, whose conditional means are exact
+            cols = prob.basis.cols
+            xc = x1r[cols].reshape(len(cols), n, m_in)
+            mu = one_step_mean(dyn, prob.times[k - 1], prob.times[k], xk0)[cols]
+            dx = xc - xc.mean(axis=2, keepdims=True)
+            cxx = np.einsum("inm,jnm->nij", dx, dx) / m_in
+            cxx += 1e-12 * np.eye(len(cols))[None] * (1.0 + np.abs(cxx).max())
+            gap = xc.mean(axis=2) - mu                                      # (c, n)
+            for s_ in live:
+                dg = gi[s_] - cond[s_][:, None]
+                cxg = np.einsum("inm,nm->ni", dx, dg) / m_in
+                beta = np.linalg.solve(cxx, cxg[..., None])[..., 0]         # (n, c)
+                cond[s_] = cond[s_] - np.einsum("ni,in->n", beta, gap)
+        incs[k] = g1 - cond
+    for k in range(T - 1, -1, -1):
+        if k < T - 1:
+            fl = prob.disc[k + 1] * prob.flows(k + 1, outer[k], outer[k + 1], pol.sflows)
+            G = Z + fl - incs[k + 1]
+        else:
+            G = np.zeros((S, n))
+        Znew = G.copy()
+        for s, eids in _sources(graph, pol.open_edges.get(k, [])).items():
+            best = G[s]
+            for e_id in eids:
+                e = graph.edges[e_id]
+                m = np.broadcast_to(prob.money(e, k, outer[k]), (n,)) * prob.disc[k]
+                best = np.maximum(best, (G[e.target] if e.target not in dead else 0.0) + m)
+            Znew[s] = best
+        Z = Znew
+    return Z[graph.initial]
