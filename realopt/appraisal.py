@@ -129,6 +129,8 @@ class Appraisal:
             "lattice": {k: getattr(self.lattice, k) for k in LatticeInfo.__dataclass_fields__},
             "warnings": list(self.warnings),
             "caution": CAUTION,
+            "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
+            "standard_error": {"present_value": 0.0, "expanded_npv": 0.0, "flexibility_value": 0.0},
         }
 
     def summary(self):

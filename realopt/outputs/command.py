@@ -73,6 +73,14 @@ def run_report(args) -> int:
     from .report import write_report
     from .sensitivity import DEFAULT_MOVES, report_solves
 
+    from ..cli import load_from_args
+    from ..errors import RealoptError
+
+    if load_from_args(args, args.file).valuation == "simulation":
+        raise RealoptError(
+            f"{args.file}: realopt report does not draw simulation results yet (valuation: "
+            "simulation); use `realopt appraise FILE` for the table and rules, or `realopt "
+            "appraise FILE --json` for every figure with its standard error. Nothing was written.")
     result = appraise_from_args(args, extra_solves=report_solves)
     out = Path(args.output) if args.output else Path(f"{Path(args.file).stem}-report")
     write_report(result, out, source=args.file, moves=args.moves or DEFAULT_MOVES)
