@@ -650,6 +650,8 @@ def _rules(prob, pol, x_fit, stats, spec):
     med = {k: np.median(x_fit[k], axis=1) for k in open_dates}
     lo = {k: np.percentile(x_fit[k], 1, axis=1) for k in open_dates}
     hi = {k: np.percentile(x_fit[k], 99, axis=1) for k in open_dates}
+    q025 = {k: np.percentile(x_fit[k], 2.5, axis=1) for k in open_dates}
+    q975 = {k: np.percentile(x_fit[k], 97.5, axis=1) for k in open_dates}
     G = 241
     for r in graph.rights:
         prim = _primary_states(r, graph)
@@ -672,6 +674,15 @@ def _rules(prob, pol, x_fit, stats, spec):
                     gains = _gains(prob, pol, k, s, xg)
                     for e_id in eids:
                         a, b, never = _crossings(grid, gains[e_id])
+                        if a is not None and b is not None:
+                            # a band: the regression is least reliable in the tails, so the
+                            # bound farther from the median is dropped if it lies outside the
+                            # central 95% of the fitting paths
+                            m = med[k][j]
+                            if abs(math.log(a / m)) > abs(math.log(b / m)):
+                                a = None if a < q025[k][j] else a
+                            else:
+                                b = None if b > q975[k][j] else b
                         thr.append(DriverThreshold(year, graph.states[s].label,
                                                    _action(graph.edges[e_id]), prob.names[j],
                                                    a, b, never))
