@@ -75,13 +75,21 @@ def open_mask(right, times, spy: int) -> np.ndarray:
 
 def exponents(d: int, degree: int) -> list[tuple[int, ...]]:
     """Monomial exponents of total degree <= ``degree`` in ``d`` variables (constant first)."""
-    out = [(0,) * d]
+    return [e for e, _ in _monomials(d, degree)]
+
+
+def _monomials(d: int, degree: int):
+    """(exponents, (parent index, variable)) per monomial: each term is its parent times one
+    variable, so the design matrix is built with one product per column."""
+    out = [((0,) * d, None)]
+    index = {(): 0}
     for deg in range(1, degree + 1):
         for combo in combinations_with_replacement(range(d), deg):
             e = [0] * d
             for i in combo:
                 e[i] += 1
-            out.append(tuple(e))
+            index[combo] = len(out)
+            out.append((tuple(e), (index[combo[:-1]], combo[-1])))
     return out
 
 
@@ -94,7 +102,8 @@ class Basis:
     exps: list = field(default_factory=list)
 
     def __post_init__(self):
-        self.exps = exponents(len(self.cols), self.degree)
+        self._mono = _monomials(len(self.cols), self.degree)
+        self.exps = [e for e, _ in self._mono]
 
     @property
     def terms(self) -> int:
@@ -108,24 +117,27 @@ class Basis:
         return v.mean(axis=1), v.std(axis=1)
 
     def matrix(self, x: np.ndarray, st) -> np.ndarray:
-        """(n, terms) design matrix; constant only where the drivers do not vary (today)."""
+        """(terms, n) design matrix, one row per monomial; constant only where the drivers do
+        not vary (today)."""
         n = x.shape[-1]
         mu, sd = st
         if not self.cols or not np.all(sd > 1e-12 * np.maximum(1.0, np.abs(mu))):
-            return np.ones((n, 1))
+            return np.ones((1, n))
         z = (x[self.cols] - mu[:, None]) / sd[:, None]
-        pw = [[np.ones(n)] for _ in self.cols]
-        for i in range(len(self.cols)):
-            for p in range(1, self.degree + 1):
-                pw[i].append(pw[i][-1] * z[i])
-        out = np.empty((n, self.terms))
-        for c, e in enumerate(self.exps):
-            col = np.ones(n)
-            for i, p in enumerate(e):
-                if p:
-                    col = col * pw[i][p]
-            out[:, c] = col
+        out = np.empty((self.terms, n))
+        out[0] = 1.0
+        for c, (_, parent) in enumerate(self._mono[1:], start=1):
+            np.multiply(out[parent[0]], z[parent[1]], out=out[c])
         return out
+
+
+def predict(rows: np.ndarray, coef: np.ndarray) -> np.ndarray:
+    """Fitted values sum_c coef[c] rows[c] over paths (a loop over terms: no threaded BLAS, the
+    same order of sums on every run)."""
+    out = coef[0] * rows[0]
+    for c in range(1, min(len(coef), rows.shape[0])):
+        out += coef[c] * rows[c]
+    return out
 
 
 # --- the compiled problem -----------------------------------------------------------------------
@@ -283,8 +295,23 @@ class Policy:
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
-        return {s: (np.zeros(B.shape[0]) if s not in b else B[:, :len(b[s])] @ b[s])
-                for s in states}
+        return {s: (np.zeros(B.shape[1]) if s not in b else predict(B, b[s])) for s in states}
+
+
+def least_squares(B: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Coefficients (k, m) of Y (m, n) on the rows of B (k, n) by the normal equations (the
+    basis is standardised, so B B' is well conditioned at the degrees allowed); a tiny ridge
+    guards collinear rows, an SVD solve is the fallback. Sums over paths by einsum (fixed order,
+    no threaded BLAS)."""
+    G = np.einsum("in,jn->ij", B, B)
+    rhs = np.einsum("in,mn->im", B, Y)
+    k = G.shape[0]
+    ridge = 1e-10 * (np.trace(G) / k if k else 1.0)
+    try:
+        L = np.linalg.cholesky(G + ridge * np.eye(k))
+        return np.linalg.solve(L.T, np.linalg.solve(L, rhs))
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(B.T, Y.T, rcond=None)[0]
 
 
 def _sources(graph, edges):
@@ -327,12 +354,12 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             needed |= {e.source, e.target}
         needed = sorted(needed - dead)
         B = prob.basis.matrix(x[k], stats[k])
-        coef, *_ = np.linalg.lstsq(B, Y[needed].T, rcond=None)
+        coef = least_squares(B, Y[needed])
         beta[k] = {s: coef[:, j] for j, s in enumerate(needed)}
         if not ids:
             P = Y
             continue
-        est = {s: B @ beta[k][s] for s in needed}
+        est = {s: predict(B, beta[k][s]) for s in needed}
         P = Y.copy()
         for s, eids in _sources(graph, ids).items():
             best = est[s]

@@ -159,3 +159,13 @@ def one_step_mean(dyn: Dynamics, t0: float, t1: float, x0: np.ndarray) -> np.nda
     decay = np.exp(-dyn.speed * h)
     y = dyn.mean(t1)[:, None] + (np.log(x0) - dyn.mean(t0)[:, None]) * decay[:, None]
     return np.exp(y + 0.5 * var[:, None])
+
+
+def change_measure(x: np.ndarray, times, src: Dynamics, dst: Dynamics) -> np.ndarray:
+    """The paths ``x`` simulated under ``src`` moved to ``dst`` with the same normals: the
+    deviation y(t) - m(t) follows the same recursion under both measures, so
+    X_dst = X_src exp(m_dst(t) - m_src(t)) exactly (in place; returns x)."""
+    for k, t in enumerate(np.asarray(times, dtype=float)):
+        shift = np.exp(dst.mean(t) - src.mean(t))
+        x[k] *= shift[:, None]
+    return x

@@ -22,7 +22,7 @@ from ..errors import ValuationError
 from ..model import Project, Switch
 from ..rights import build_state_graph, prepared_rights, requirement_closure, usable_subset
 from . import lsm
-from .paths import dynamics, simulate
+from .paths import change_measure, dynamics, simulate
 
 MAX_RIGHTS = 10
 PROGRESS_AFTER = 2.0
@@ -470,7 +470,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
 
     # real world: the same valuing normals with real-world drifts (chances of use, DCF)
     dyn_rw = dynamics(prob.model, "real_world")
-    x_rw = simulate(dyn_rw, prob.times, n, spec.seed, "value", anti)
+    x_rw = change_measure(x_val, prob.times, dyn, dyn_rw)     # x_val is not needed after this
     res_rw = lsm.run(prob, pol, x_rw, record=True, progress=prog)
     rw_dcf, rw_se = _real_world_dcf(prob, x_rw, anti)
     fan_years, fan = _fan(prob, x_rw)
@@ -563,11 +563,12 @@ def _real_world_dcf(prob: lsm.Problem, x: np.ndarray, anti: bool):
 def _fan(prob: lsm.Problem, x: np.ndarray):
     """Real-world percentiles (5, 25, 50, 75, 95) of each stochastic driver at each date."""
     qs = (5, 25, 50, 75, 95)
+    ks = _sample(prob.T, 61)
     out = {}
     for i, name in enumerate(prob.names):
-        pc = np.percentile(x[:, i, :], qs, axis=1)
+        pc = np.percentile(x[ks, i, :20000], qs, axis=1)
         out[name] = {q: pc[j] for j, q in enumerate(qs)}
-    return prob.times.copy(), out
+    return prob.times[ks].copy(), out
 
 
 # --- rules in the drivers' units -----------------------------------------------------------------
@@ -647,11 +648,13 @@ def _rules(prob, pol, x_fit, stats, spec):
     if not cols:
         return thresholds, maps, cf_rules, {}
     open_dates = sorted(pol.open_edges)
-    med = {k: np.median(x_fit[k], axis=1) for k in open_dates}
-    lo = {k: np.percentile(x_fit[k], 1, axis=1) for k in open_dates}
-    hi = {k: np.percentile(x_fit[k], 99, axis=1) for k in open_dates}
-    q025 = {k: np.percentile(x_fit[k], 2.5, axis=1) for k in open_dates}
-    q975 = {k: np.percentile(x_fit[k], 97.5, axis=1) for k in open_dates}
+    if len(open_dates) > 120:                      # thresholds at 120 dates at most
+        keep = np.unique(np.round(np.linspace(0, len(open_dates) - 1, 120)).astype(int))
+        open_dates = [open_dates[i] for i in keep]
+    med, lo, hi, q025, q975 = {}, {}, {}, {}, {}
+    for k in open_dates:
+        q = np.percentile(x_fit[k][:, :20000], [1, 2.5, 50, 97.5, 99], axis=1)
+        lo[k], q025[k], med[k], q975[k], hi[k] = q
     G = 241
     for r in graph.rights:
         prim = _primary_states(r, graph)
@@ -748,7 +751,7 @@ def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
         pair = [names.index(spec.map_drivers[0]), names.index(spec.map_drivers[1])]
     else:
         score = {j: 0.0 for j in cols}
-        for k in list(pol.open_edges)[:: max(1, len(pol.open_edges) // 8)]:
+        for k in sorted(med)[:: max(1, len(med) // 8)]:
             for s in {graph.edges[e].source for e in pol.open_edges[k]}:
                 for j in cols:
                     xg = np.repeat(med[k][:, None], 41, axis=1)
@@ -758,7 +761,7 @@ def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
         pair = sorted(cols, key=lambda j: -score[j])[:2]
     a, b = pair
     out = []
-    dates = sorted(pol.open_edges)
+    dates = sorted(med)
     for s in sorted({graph.edges[e].source for k in dates for e in pol.open_edges[k]}):
         ks = [k for k in dates if any(graph.edges[e].source == s for e in pol.open_edges[k])]
         if not ks:
