@@ -169,3 +169,9 @@ def change_measure(x: np.ndarray, times, src: Dynamics, dst: Dynamics) -> np.nda
         shift = np.exp(dst.mean(t) - src.mean(t))
         x[k] *= shift[:, None]
     return x
+
+
+def expected(dyn: Dynamics, t: float) -> np.ndarray:
+    """E[X_t] from today under the measure of ``dyn``: exp(m(t) + v(t)/2)."""
+    v = np.array([_variance(s, k, float(t)) for s, k in zip(dyn.vol, dyn.speed)])
+    return np.exp(dyn.mean(t) + 0.5 * v)

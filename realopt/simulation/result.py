@@ -311,8 +311,9 @@ def plan(project: Project) -> SimPlan:
                                            * (d + 3 * S + terms))
     memory = int(sets + work + ub)
     dec = int(opened.sum())
-    per_path = 40e-9 * (prob.T * (S + d) + dec * terms * (S + terms) * 0.5)
-    seconds = n * (solves * 2.2 * per_path + 12e-9 * prob.T * d * 3)
+    # CPU seconds, calibrated on tests/benchmarks/bench_simulation.py (the Bermudan put and the
+    # three-driver plant on this project's 2-core machine); a loaded machine takes longer
+    seconds = 0.3 + n * solves * prob.T * (S + terms) * 9.5e-9 + n * prob.T * max(d, 1) * 2e-8
     if spec.upper_bound_paths:
         seconds += spec.upper_bound_paths * spec.upper_bound_inner * prob.T * (
             S + d + terms) * 30e-9
@@ -383,15 +384,26 @@ def _check_project(project: Project) -> None:
             "split the project.")
 
 
-def _mean_se(v: np.ndarray, antithetic: bool) -> tuple[float, float]:
+def _mean_se(v: np.ndarray, antithetic: bool, control: np.ndarray | None = None):
+    """(mean, standard error) of pathwise values ``v``; antithetic pairs are averaged first.
+    ``control``: pathwise values of known mean 0 (a control variate, coefficient fitted on the
+    same paths; linear in ``v``, so sums of shares stay exact)."""
     n = v.shape[0]
     if n <= 1:
         return float(v.mean()), 0.0
     if antithetic:
         h = n // 2
         w = 0.5 * (v[:h] + v[h:])
-        return float(w.mean()), float(w.std(ddof=1) / math.sqrt(h)) if h > 1 else 0.0
-    return float(v.mean()), float(v.std(ddof=1) / math.sqrt(n))
+        c = None if control is None else 0.5 * (control[:h] + control[h:])
+    else:
+        h, w, c = n, v, control
+    if c is not None:
+        cc = c - c.mean()
+        var = float(np.einsum("i,i->", cc, cc))
+        if var > 0:
+            beta = float(np.einsum("i,i->", w - w.mean(), cc)) / var
+            w = w - beta * c
+    return float(w.mean()), float(w.std(ddof=1) / math.sqrt(h)) if h > 1 else 0.0
 
 
 def shapley_weights(n: int) -> list[float]:
@@ -459,9 +471,15 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         share_paths[name] = acc
         alone_paths[name] = value_of(requirement_closure(rights, name)) - base
 
-    static, se_pv = _mean_se(base, anti)
-    expanded, se_full = _mean_se(v_full, anti)
-    flex, se_flex = _mean_se(v_full - base, anti)
+    # control variate: the base state's pathwise value less its exact risk-neutral mean, when
+    # the base cash flow is affine in the simulated drivers (then E*[CF] = CF(E*[X]))
+    exact = _exact_base_value(prob, dyn)
+    cv = None if exact is None or n <= 1 else base + investment_pv - exact
+    static, se_pv = _mean_se(base, anti, cv)
+    if cv is not None:                       # the control is the base value itself: exact
+        static, se_pv = float(exact) - investment_pv, 0.0
+    expanded, se_full = _mean_se(v_full, anti, cv)
+    flex, se_flex = _mean_se(v_full - base, anti, cv)
     present_value = static + investment_pv
 
     # rules in driver units, from the fitting paths' spread of the drivers
@@ -497,10 +515,11 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
 
     graph = pol.graph
     fmt = _money_format(project)
-    out_rights = []
+    out_rights, alone_means = [], {}
     for r in rights:
-        sh, sh_se = _mean_se(share_paths[r.name], anti)
-        al, al_se = _mean_se(alone_paths[r.name], anti)
+        sh, sh_se = _mean_se(share_paths[r.name], anti, cv)
+        al, al_se = _mean_se(alone_paths[r.name], anti, cv)
+        alone_means[r.name] = al
         out_rights.append(_right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se,
                                        thresholds.get(r.name, ()), cf_rules.get(r.name),
                                        maps, fmt))
@@ -514,7 +533,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     return SimulationAppraisal(
         project=project, present_value=present_value, investment_pv=investment_pv,
         static_npv=static, expanded_npv=expanded, flexibility_value=flex,
-        interaction=flex - sum(float(np.mean(a)) for a in alone_paths.values()),
+        interaction=flex - sum(alone_means.values()),
         decision_today=_decision_today(prob, pol, x_val, expanded, fmt),
         rights=tuple(out_rights),
         standard_error={"present_value": se_pv, "expanded_npv": se_full,
@@ -547,6 +566,22 @@ def lsm_info(project, prob, n, anti, open_by, graph, pol, seconds) -> Simulation
 def _money_format(project):
     template = " ".join(s for s in (project.currency, "{:,.2f}", project.unit) if s)
     return lambda x: template.format(x)
+
+
+def _exact_base_value(prob: lsm.Problem, dyn) -> float | None:
+    """Risk-neutral value of the base state's flows in closed form when its formula is affine in
+    the simulated drivers and untaxed (E*[X_t] = exp(m(t) + v(t)/2)); else None."""
+    from .paths import expected
+
+    f = prob.state_flows(build_state_graph(()))[0]
+    if prob.tax or f.key == "" or not prob.formulas[f.key].is_affine(set(prob.names)):
+        return None
+    total = 0.0
+    for k in range(1, prob.T):
+        ex_now = expected(dyn, prob.times[k])[:, None]
+        ex_prev = expected(dyn, prob.times[k - 1])[:, None]
+        total += prob.disc[k] * float(prob.flows(k, ex_prev, ex_now, [f])[0, 0])
+    return total
 
 
 def _real_world_dcf(prob: lsm.Problem, x: np.ndarray, anti: bool):
@@ -698,49 +733,53 @@ def _rules(prob, pol, x_fit, stats, spec):
     return thresholds, maps, cf_rules, influence
 
 
-def _cash_flow_rule(prob, pol, x_fit, cases, limit=24):
-    """The rule as a threshold on the source state's own yearly cash flow, where it describes
-    the fitted policy on at least 97% of the fitting paths at every sampled date: returns
-    (side, [(year, threshold)], agreement) or None."""
-    if not cases:
-        return None
+def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
+    """Each action's rule as a threshold on the year's base cash flow (the underlying
+    ``cash_flow`` formula at the date's driver values), where such a threshold reproduces the
+    fitted decision on at least ``agree`` of the fitting paths at every sampled date where the
+    action is ever taken. Returns [(action, state, side, [(year, threshold)], agreement)]."""
     graph = pol.graph
-    pick = np.unique(np.round(np.linspace(0, len(cases) - 1, min(limit, len(cases)))).astype(int))
-    out, worst, side_seen = [], 1.0, set()
-    for c in pick:
-        s, k, eids = cases[c]
-        f = pol.sflows[s]
-        if f.key == "":
-            return None
-        x = x_fit[k][:, :20000]
-        vals = prob.formula_values(k, x)
-        cf = f.mult * vals[f.key] + f.fixed
-        gains = _gains(prob, pol, k, s, x)
-        ex = np.zeros(x.shape[-1], dtype=bool)
+    by_action: dict = {}
+    for s, k, eids in cases:
         for e_id in eids:
-            ex |= gains[e_id] > 0
-        frac = ex.mean()
-        if frac == 0.0:
-            continue
-        order = np.argsort(cf)
-        e_sorted = ex[order]
-        n = e_sorted.size
-        # rule "exercise when cf <= c_i": correct = exercised below + not exercised above
-        below_ex = np.cumsum(e_sorted)
-        above_not = (n - np.arange(1, n + 1)) - (e_sorted.sum() - below_ex)
-        acc_below = (below_ex + above_not) / n
-        acc_above = 1.0 - acc_below
-        ib, ia = int(np.argmax(acc_below)), int(np.argmax(acc_above))
-        if acc_below[ib] >= acc_above[ia]:
-            side, acc, thr = "below", acc_below[ib], float(cf[order][ib])
-        else:
-            side, acc, thr = "above", acc_above[ia], float(cf[order][ia])
-        side_seen.add(side)
-        worst = min(worst, acc)
-        out.append((float(prob.times[k]), thr, graph.states[s].label))
-    if not out or len(side_seen) != 1 or worst < 0.97:
-        return None
-    return side_seen.pop(), out, worst
+            by_action.setdefault((_action(graph.edges[e_id]), s), []).append((k, e_id))
+    out = []
+    for (action, s), items in by_action.items():
+        pick = np.unique(np.round(np.linspace(0, len(items) - 1,
+                                              min(limit, len(items)))).astype(int))
+        pts, worst, sides, tried = [], 1.0, set(), 0
+        for c in pick:
+            k, e_id = items[c]
+            x = x_fit[k][:, :20000]
+            cf = prob.formula_values(k, x)["base"]
+            ex = _gains(prob, pol, k, s, x)[e_id] > 0
+            if not ex.any() or ex.all():
+                continue
+            order = np.argsort(cf, kind="stable")
+            e_sorted = ex[order]
+            n = e_sorted.size
+            below_ex = np.cumsum(e_sorted)                      # exercised with cf <= c_i
+            above_not = (n - np.arange(1, n + 1)) - (e_sorted.sum() - below_ex)
+            acc_below = (below_ex + above_not) / n
+            acc_above = 1.0 - acc_below
+            ib, ia = int(np.argmax(acc_below)), int(np.argmax(acc_above))
+            if acc_below[ib] >= acc_above[ia]:
+                side, acc, thr = "below", float(acc_below[ib]), float(cf[order][ib])
+            else:
+                side, acc, thr = "above", float(acc_above[ia]), float(cf[order][ia])
+            # errors also small against the rarer decision, so "never" cannot pass as a rule
+            errors = (1.0 - acc) * n
+            rare = min(int(ex.sum()), n - int(ex.sum()))
+            tried += 1
+            if errors > 0.25 * rare or acc < agree:
+                continue
+            sides.add(side)
+            worst = min(worst, acc)
+            pts.append((float(prob.times[k]), thr))
+        # the rule must hold at 80% or more of the sampled dates where the action is taken
+        if pts and len(sides) == 1 and len(pts) >= 0.8 * tried:
+            out.append((action, graph.states[s].label, sides.pop(), pts, worst))
+    return out
 
 
 def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
@@ -870,15 +909,13 @@ def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> s
     tail = f"; chance of use (real-world): {use_max:.0%} at its highest, {use_end:.0%} at year " \
            f"{horizon:g}"
     parts = []
-    if cf_rule is not None and not thr:
-        s, pts, acc = cf_rule
-        word = "below" if s == "below" else "above"
+    for action, state, side_cf, pts, acc in (cf_rule or []) if not thr else []:
         a, b = pts[0], pts[-1]
-        txt = (f"when the year's cash flow in state '{a[2]}' is {word} {fmt(a[1])} (year "
-               f"{a[0]:.3g})")
+        txt = (f"{action} (from '{state}') when the year's base cash flow is {side_cf} "
+               f"{fmt(a[1])} (year {a[0]:.3g})")
         if b is not a:
             txt += f", {fmt(b[1])} by year {b[0]:.3g}"
-        parts.append(txt + f" (this describes {acc:.0%} or more of the fitted decisions)")
+        parts.append(txt + f" (this matches {acc:.0%} or more of the fitted decisions)")
     live = [t for t in thr if not t.never]
     if thr:
         if not live:
@@ -902,9 +939,9 @@ def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> s
                 else:
                     txt = f"{action} at most {drv} values"
                 parts.append(txt)
-    elif maps and cf_rule is None:
-        parts.append(f"see the decision maps in the plane of {maps[0].x_driver} and "
-                     f"{maps[0].y_driver}")
+    if maps and not thr:
+        parts.append(f"the decision maps in the plane of {maps[0].x_driver} and "
+                     f"{maps[0].y_driver} show the whole rule")
     return head + (": " + "; ".join(parts) if parts else "") + tail
 
 
