@@ -280,6 +280,95 @@ class Problem:
         return edge.sign * float(a.at(float(self.times[k])))
 
 
+# --- martingale control variate ----------------------------------------------------------------
+
+MARTINGALE_BUDGET = 4e9        # (dates x future flow dates x drivers x paths) work allowed
+
+
+def martingale_increments(prob: Problem, dyn, x: np.ndarray) -> dict | None:
+    """Zero-mean increments dM_f(k) = G_f(k) + Vbar_f(k) - Vbar_f(k-1), shape (T, n), for each
+    formula f affine in the simulated drivers (untaxed) that depends on them, where G_f(k) is
+    the discounted formula flow paid at date k and Vbar_f(k) = E*_k[sum over later dates of G_f]
+    in closed form (E*_k[X_e] = exp(m(t_e) + (ln X_k - m(t_k)) e^{-speed h} + v(h)/2)).
+
+    Subtracting mult_s * dM_f along the path of the state held (f its formula) leaves every
+    expectation unchanged (a martingale transform with predictable coefficients) and removes
+    the noise of the flows after a decision: the pathwise value of a right becomes close to its
+    payoff at exercise. None when no formula qualifies or the work exceeds the budget."""
+    if prob.tax or not prob.uncertain:
+        return None
+    names = set(prob.names)
+    keys = [k for k, f in prob.formulas.items() if f.is_affine(names) and f.names & names]
+    if not keys:
+        return None
+    T, n, d = prob.T, x.shape[-1], len(prob.names)
+    flow = [(s, s - 1 if prob.timing == "spread" else s) for s in range(1, T)
+            if prob.weight[s] > 0]
+    work = T * len(flow) * max(1, d) * n / 2
+    if work > MARTINGALE_BUDGET:
+        return None
+    from .paths import _variance
+
+    # affine coefficients at each env date: c0 and c_i (schedules at that date)
+    probe = np.concatenate([np.zeros((d, 1)), np.eye(d)], axis=1)
+    coef = {}
+    for s_, e in flow:
+        vals = prob.formula_values(e, probe)
+        coef[e] = {key: (vals[key][0], vals[key][1:] - vals[key][0]) for key in keys}
+    means = np.array([dyn.mean(t) for t in prob.times])           # (T, d)
+    out = {key: np.zeros((T, n)) for key in keys}
+    prev = None
+    for k in range(T):
+        xk = x[k]
+        logx = np.log(xk) if d else None
+        vbar = {key: np.zeros(n) for key in keys}
+        for s_, e in flow:
+            if s_ <= k:
+                continue
+            w = prob.disc[s_] * prob.weight[s_]
+            if e == k:
+                ex = xk
+            else:
+                h = float(prob.times[e] - prob.times[k])
+                b = np.exp(-dyn.speed * h)
+                v = np.array([_variance(sg, kp, h) for sg, kp in zip(dyn.vol, dyn.speed)])
+                ex = np.exp(means[e][:, None] + (logx - means[k][:, None]) * b[:, None]
+                            + 0.5 * v[:, None])
+            for key in keys:
+                c0, ci = coef[e][key]
+                acc = vbar[key]
+                acc += w * c0
+                for i in range(d):
+                    if ci[i] != 0.0:
+                        acc += (w * ci[i]) * ex[i]
+        if k > 0:
+            g = prob.formula_values(flow_env(prob, k), x[flow_env(prob, k)]) \
+                if prob.weight[k] > 0 else None
+            for key in keys:
+                paid = prob.disc[k] * prob.weight[k] * g[key] if g is not None else 0.0
+                out[key][k] = paid + vbar[key] - prev[key]
+        prev = vbar
+    return out
+
+
+def flow_env(prob: Problem, k: int) -> int:
+    return k - 1 if prob.timing == "spread" else k
+
+
+def _correction(pol_sflows, mart, k: int, S: int, n: int) -> np.ndarray | None:
+    """(S, n) martingale correction of each state for the step ending at date k."""
+    if mart is None:
+        return None
+    out = np.zeros((S, n))
+    hit = False
+    for s, f in enumerate(pol_sflows):
+        inc = mart.get(f.key)
+        if inc is not None and f.mult != 0.0:
+            out[s] = f.mult * inc[k]
+            hit = True
+    return out if hit else None
+
+
 # --- policy -------------------------------------------------------------------------------------
 
 @dataclass
@@ -322,7 +411,7 @@ def _sources(graph, edges):
 
 
 def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
-        all_states: bool = False, progress=None) -> Policy:
+        all_states: bool = False, progress=None, mart: dict | None = None) -> Policy:
     """Backward induction on the fitting paths ``x`` (T, d, n): the policy for ``graph``.
 
     ``all_states``: regress every live state at every date (for the dual upper bound)."""
@@ -342,6 +431,9 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             progress()
         if k < T - 1:
             Y = P + prob.disc[k + 1] * prob.flows(k + 1, x[k], x[k + 1], sflows)
+            corr = _correction(sflows, mart, k + 1, S, n)
+            if corr is not None:
+                Y -= corr
         else:
             Y = np.zeros((S, n))
         ids = open_edges.get(k)
@@ -383,6 +475,7 @@ class Run:
     values: np.ndarray        # (n,) discounted flows + money of the initial state's path
     occupancy: np.ndarray     # (T, S) share of paths in each state after each date's decision
     exercised: np.ndarray     # (T, E) share of paths taking each edge at each date
+    correction: np.ndarray | None = None   # (n,) martingale sum along the states held
 
 
 def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
@@ -421,7 +514,10 @@ def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
     return new, money, taken
 
 
-def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progress=None) -> Run:
+def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progress=None,
+        mart: dict | None = None) -> Run:
+    """``mart``: martingale increments of these paths; their sum along the states held is
+    returned as ``correction`` (zero mean: a control variate for ``values``)."""
     """Apply the fitted policy forward on paths ``x`` (independent of the fit)."""
     graph = pol.graph
     S, E, n, T = len(graph.states), len(graph.edges), x.shape[-1], prob.T
@@ -430,6 +526,7 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
     occ = np.zeros((T, S)) if record else np.zeros((0, S))
     exe = np.zeros((T, E)) if record else np.zeros((0, E))
     cols = np.arange(n)
+    ctrl = np.zeros(n) if mart is not None else None
     for k in range(T):
         if progress:
             progress()
@@ -437,6 +534,9 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
             fl = prob.flows(k, x[k - 1], x[k], pol.sflows)
             if fl.any():
                 total += prob.disc[k] * fl[cur, cols]
+            corr = _correction(pol.sflows, mart, k, S, n)
+            if corr is not None:
+                ctrl += corr[cur, cols]
         if k in pol.open_edges:
             cur, money, taken = decide(prob, pol, k, x[k], cur)
             total += prob.disc[k] * money
@@ -445,7 +545,7 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
                 exe[k] = np.bincount(taken[hit], minlength=E)[:E] / n
         if record:
             occ[k] = np.bincount(cur, minlength=S)[:S] / n
-    return Run(values=total, occupancy=occ, exercised=exe)
+    return Run(values=total, occupancy=occ, exercised=exe, correction=ctrl)
 
 
 # --- dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) ------------------------------

@@ -384,25 +384,37 @@ def _check_project(project: Project) -> None:
             "split the project.")
 
 
-def _mean_se(v: np.ndarray, antithetic: bool, control: np.ndarray | None = None):
+def _mean_se(v: np.ndarray, antithetic: bool, controls=()):
     """(mean, standard error) of pathwise values ``v``; antithetic pairs are averaged first.
-    ``control``: pathwise values of known mean 0 (a control variate, coefficient fitted on the
-    same paths; linear in ``v``, so sums of shares stay exact)."""
+    ``controls``: pathwise values of known mean 0 (control variates; coefficients by least
+    squares on the same paths; the estimate is linear in ``v``, so sums of shares stay exact).
+    Controls that do not vary are dropped."""
     n = v.shape[0]
     if n <= 1:
         return float(v.mean()), 0.0
-    if antithetic:
-        h = n // 2
-        w = 0.5 * (v[:h] + v[h:])
-        c = None if control is None else 0.5 * (control[:h] + control[h:])
-    else:
-        h, w, c = n, v, control
-    if c is not None:
+
+    def pairs(a):
+        return 0.5 * (a[: n // 2] + a[n // 2:]) if antithetic else a
+
+    w = pairs(v)
+    h = w.shape[0]
+    scale = 1.0 + float(np.abs(v).max())
+    cols = []
+    for c in controls:
+        c = pairs(c)
         cc = c - c.mean()
-        var = float(np.einsum("i,i->", cc, cc))
-        if var > 0:
-            beta = float(np.einsum("i,i->", w - w.mean(), cc)) / var
-            w = w - beta * c
+        if float(np.einsum("i,i->", cc, cc)) > (1e-9 * scale) ** 2 * h:
+            cols.append(c)
+    if cols:
+        C = np.array(cols)
+        Cc = C - C.mean(axis=1, keepdims=True)
+        G = np.einsum("in,jn->ij", Cc, Cc)
+        rhs = np.einsum("in,n->i", Cc, w - w.mean())
+        try:
+            beta = np.linalg.solve(G + 1e-12 * np.trace(G) * np.eye(len(cols)), rhs)
+        except np.linalg.LinAlgError:
+            beta = np.zeros(len(cols))
+        w = w - np.einsum("i,in->n", beta, C)
     return float(w.mean()), float(w.std(ddof=1) / math.sqrt(h)) if h > 1 else 0.0
 
 
@@ -436,11 +448,13 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     x_fit = simulate(dyn, prob.times, n, spec.seed, "fit", anti)
     stats = [prob.basis.stats(x_fit[k]) for k in range(prob.T)]
     x_val = simulate(dyn, prob.times, n, spec.seed, "value", anti)
+    mart = lsm.martingale_increments(prob, dyn, x_val)
 
     cache: dict = {}
     policies: dict = {}
 
-    def value_of(subset_names) -> np.ndarray:
+    def value_of(subset_names):
+        """(pathwise value, pathwise martingale control) of a subset of rights."""
         usable = usable_subset(rights, set(subset_names))
         key = frozenset(r.name for r in usable)
         if key not in cache:
@@ -448,38 +462,54 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
             full = key == frozenset(names)
             pol = lsm.fit(prob, graph, x_fit, stats, open_by, all_states=full and ub_asked,
                           progress=prog)
-            res = lsm.run(prob, pol, x_val, record=full, progress=prog)
+            res = lsm.run(prob, pol, x_val, record=full, progress=prog, mart=mart)
             v = res.values - (investment_pv if graph.states[graph.initial].invested else 0.0)
-            cache[key] = v
+            cache[key] = (v, res.correction if res.correction is not None else np.zeros_like(v))
             policies[key] = (pol, res)
         return cache[key]
 
-    base = value_of([])
+    base, base_c = value_of([])
     vals = {m: value_of([names[k] for k in range(len(names)) if m >> k & 1])
             for m in range(masks)}
     full_key = frozenset(r.name for r in usable_subset(rights, set(names)))
     pol, res_rn = policies[full_key]
-    v_full = vals[masks - 1]
+    v_full, c_full = vals[masks - 1]
     w = shapley_weights(len(names)) if names else []
     share_paths, alone_paths = {}, {}
     for k, name in enumerate(names):
         bit = 1 << k
-        acc = np.zeros_like(base)
+        acc, acc_c = np.zeros_like(base), np.zeros_like(base)
         for m in range(masks):
             if not m & bit:
-                acc += w[bin(m).count("1")] * (vals[m | bit] - vals[m])
-        share_paths[name] = acc
-        alone_paths[name] = value_of(requirement_closure(rights, name)) - base
+                acc += w[bin(m).count("1")] * (vals[m | bit][0] - vals[m][0])
+                acc_c += w[bin(m).count("1")] * (vals[m | bit][1] - vals[m][1])
+        share_paths[name] = (acc, acc_c)
+        v_alone, c_alone = value_of(requirement_closure(rights, name))
+        alone_paths[name] = (v_alone - base, c_alone - base_c)
+    del mart
 
-    # control variate: the base state's pathwise value less its exact risk-neutral mean, when
-    # the base cash flow is affine in the simulated drivers (then E*[CF] = CF(E*[X]))
+    # Control variates (zero mean, coefficients fitted on the same paths, linear in the
+    # estimate so Shapley shares still add up): the martingale sum along the states held
+    # (lsm.martingale_increments) and, when the base flows are affine, the base value less its
+    # exact risk-neutral mean (then the present value itself is exact).
     exact = _exact_base_value(prob, dyn)
-    cv = None if exact is None or n <= 1 else base + investment_pv - exact
-    static, se_pv = _mean_se(base, anti, cv)
-    if cv is not None:                       # the control is the base value itself: exact
+    base_cv = None if exact is None or n <= 1 else base + investment_pv - exact
+
+    # one fixed set of controls for every estimate, so that the estimate is linear in the
+    # pathwise values and Shapley shares add up to the flexibility value exactly
+    ctrl = [c for _, c in cache.values() if c is not None]
+    if len(ctrl) + 1 > max(2, n // 200):
+        ctrl = [c_full] if c_full is not None else []
+    ctrl = ctrl + ([base_cv] if base_cv is not None else [])
+
+    def estimate(v, c=None):
+        return _mean_se(v, anti, ctrl)
+
+    static, se_pv = estimate(base, base_c)
+    if base_cv is not None:
         static, se_pv = float(exact) - investment_pv, 0.0
-    expanded, se_full = _mean_se(v_full, anti, cv)
-    flex, se_flex = _mean_se(v_full - base, anti, cv)
+    expanded, se_full = estimate(v_full, c_full)
+    flex, se_flex = estimate(v_full - base, c_full - base_c)
     present_value = static + investment_pv
 
     # rules in driver units, from the fitting paths' spread of the drivers
@@ -517,8 +547,8 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     fmt = _money_format(project)
     out_rights, alone_means = [], {}
     for r in rights:
-        sh, sh_se = _mean_se(share_paths[r.name], anti, cv)
-        al, al_se = _mean_se(alone_paths[r.name], anti, cv)
+        sh, sh_se = estimate(*share_paths[r.name])
+        al, al_se = estimate(*alone_paths[r.name])
         alone_means[r.name] = al
         out_rights.append(_right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se,
                                        thresholds.get(r.name, ()), cf_rules.get(r.name),
