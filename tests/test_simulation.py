@@ -356,3 +356,129 @@ def test_cli_check_and_appraise_json(tmp_path):
     rep = run("report", str(f), "-o", str(tmp_path / "out"))
     assert rep.returncode == 1 and "simulation" in rep.stderr
     assert not (tmp_path / "out").exists()
+
+
+# --- the whole state graph against the lattice ------------------------------------------------
+
+GRAPH = """
+project: {{name: graph}}
+{valuation}
+market: {{risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.08}}
+underlying:
+  years: [1, 8]
+  drivers:
+    X: {{process: gbm, start: 12, drift: 0.08, volatility: 0.35, risk_neutral: {{drift: 0.05}}}}
+  cash_flow: X
+{vol}investment: {{cost: 80}}
+rights:
+  - {{name: Wait, type: defer, window: [0, 3], exercise: bermudan, dates: [0, 1, 2, 3]}}
+  - {{name: Grow, type: expand, scale: 0.4, cost: 30, window: [1, 6], exercise: bermudan,
+     dates: [1, 2, 3, 4, 5, 6], requires: [Wait]}}
+  - {{name: Idle, type: switch, modes: {{run: {{}}, idle: {{scale: 0, fixed: -1.0}}}},
+     costs: {{run->idle: 0.5, idle->run: 1.5}}, window: [1, 7], exercise: bermudan,
+     dates: [1, 2, 3, 4, 5, 6, 7]}}
+  - {{name: Sell, type: abandon, salvage: 35, window: [1, 7], exercise: bermudan,
+     dates: [1, 2, 3, 4, 5, 6, 7], excludes: [Grow]}}
+"""
+
+
+def test_every_right_type_with_requires_and_excludes_agrees_with_the_lattice():
+    # the same state graph (defer, expand requiring it, a repeatable switch, abandonment
+    # excluding the expansion) valued by the two independent methods; proportional flows make
+    # the lattice exact up to its own tree error (100 steps a year)
+    sim = realopt.appraise(loads(GRAPH.format(
+        valuation="valuation: simulation\nsimulation: {paths: 20000, seed: 4, basis: 3}",
+        vol="")))
+    lat = realopt.appraise(loads(GRAPH.format(valuation="lattice: {steps_per_year: 100}",
+                                              vol="  volatility: 0.35\n")))
+    assert len(sim.state_graph.states) == len(lat.state_graph.states)
+    assert abs(sim.expanded_npv - lat.expanded_npv) < 4 * se(sim, "expanded_npv") + 0.1
+    for r in sim.rights:
+        l = lat.right(r.name)
+        assert abs(r.shapley_value - l.shapley_value) < 4 * r.shapley_standard_error + 0.1, \
+            (r.name, r.shapley_value, l.shapley_value, r.shapley_standard_error)
+        assert abs(r.standalone_value - l.standalone_value) < \
+            4 * r.standalone_standard_error + 0.1, r.name
+
+
+def test_money_formula_over_the_drivers():
+    # salvage 0.5 S + 25 at year 1 only on a project worth S: the right pays
+    # max(25 - 0.5 S_1, 0) = 0.5 max(50 - S_1, 0), half a European put struck at 50
+    # (Black-Scholes-Merton, tests/references.bsm)
+    from references import bsm
+
+    text = """
+project: {name: formula salvage}
+valuation: simulation
+simulation: {paths: 20000, seed: 1}
+market: {risk_free_rate: 0.06, compounding: continuous, discount_rate: 0.06}
+underlying:
+  years: [2, 2]
+  drivers:
+    S: {process: gbm, start: 36, volatility: 0.2, risk_neutral: {drift: 0.06}}
+  cash_flow: S
+investment: {cost: 0}
+rights:
+  - {name: Sell, type: abandon, salvage: 0.5 * S + 25, window: [1, 1], exercise: european}
+"""
+    a = realopt.appraise(loads(text))
+    assert a.project.rights[0].salvage.formula == "0.5 * S + 25"
+    ref = 0.5 * bsm("put", 36.0, 50.0, 0.06, 0.0, 0.2, 1.0)
+    assert abs(a.flexibility_value - ref) < 4 * se(a) + 0.005, (a.flexibility_value, ref)
+    # salvage S + 1 today only: used at once on every path, worth exactly 1 more
+    b = realopt.appraise(loads(text.replace("0.5 * S + 25, window: [1, 1], exercise: european",
+                                            "S + 1, window: [0, 0]")))
+    assert b.flexibility_value == pytest.approx(1.0, abs=1e-9)
+    assert b.decision_today == "invest, and use 'Sell' at once"
+
+
+def test_spread_timing_present_value_is_exact():
+    # spread: each step pays the cash-flow rate at its start times the step's length inside the
+    # cash-flow years (DESIGN.md); E*[X_t] = X0 e^{r t} (gbm), discounted at r (continuous)
+    text = """
+project: {name: spread}
+valuation: simulation
+simulation: {paths: 2000, steps_per_year: 4}
+market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
+underlying:
+  years: [1, 3]
+  flow_timing: spread
+  drivers:
+    X: {process: gbm, start: 10, volatility: 0.3, risk_neutral: {drift: 0.04}}
+  cash_flow: X
+investment: {cost: 0}
+rights:
+  - {name: Sell, type: abandon, salvage: 0, window: [0, 3]}
+"""
+    a = realopt.appraise(loads(text))
+    ts = np.arange(0, 13) / 4
+    ref = sum(math.exp(-0.04 * ts[k]) * 0.25 * 10 * math.exp(0.04 * ts[k - 1])
+              for k in range(1, 13))
+    assert a.present_value == pytest.approx(ref, rel=1e-12)
+    assert a.flexibility_value >= -3 * se(a)
+
+
+def test_real_world_paths_share_the_valuing_normals():
+    from realopt.simulation.paths import change_measure
+
+    p = loads(PROPORTIONAL.format(valuation="valuation: simulation", vol=""))
+    rn, rw = dynamics(p.underlying.drivers, "risk_neutral"), dynamics(p.underlying.drivers,
+                                                                      "real_world")
+    times = np.array([0.0, 0.5, 1.0, 4.0])
+    a = change_measure(simulate(rn, times, 1000, 7, "value", True), times, rn, rw)
+    b = simulate(rw, times, 1000, 7, "value", True)
+    assert np.allclose(a, b, rtol=1e-12, atol=0)
+
+
+def test_simulation_demo_reads_in_prices(simulation_demos):
+    assert simulation_demos, "a demo project with valuation: simulation"
+    for path in simulation_demos:
+        p = realopt.load_project(path, {"simulation.paths": 4000})
+        a = realopt.appraise(p)
+        assert a.warnings == ()
+        assert {"defer", "switch"} <= {r.type for r in a.rights}
+        assert a.driver_maps and {m.x_driver for m in a.driver_maps} <= set(
+            d.name for d in p.underlying.drivers.drivers)
+        assert all(0.0 <= u <= 1.0 for r in a.rights for u in r.use_real_world)
+        assert sum(r.shapley_value for r in a.rights) == pytest.approx(a.flexibility_value,
+                                                                       abs=1e-9)

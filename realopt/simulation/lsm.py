@@ -110,20 +110,24 @@ class Basis:
         return len(self.exps)
 
     def stats(self, x: np.ndarray):
-        """(mean, sd) of the regression variables at one date from the fitting paths x (d, n)."""
+        """(mean, sd, min, max) of the regression variables at one date on the fitting paths x
+        (d, n)."""
         if not self.cols:
-            return np.zeros(0), np.zeros(0)
+            return np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0)
         v = x[self.cols]
-        return v.mean(axis=1), v.std(axis=1)
+        return v.mean(axis=1), v.std(axis=1), v.min(axis=1), v.max(axis=1)
 
     def matrix(self, x: np.ndarray, st) -> np.ndarray:
         """(terms, n) design matrix, one row per monomial; constant only where the drivers do
         not vary (today)."""
         n = x.shape[-1]
-        mu, sd = st
+        mu, sd, lo, hi = st
         if not self.cols or not np.all(sd > 1e-12 * np.maximum(1.0, np.abs(mu))):
             return np.ones((1, n))
-        z = (x[self.cols] - mu[:, None]) / sd[:, None]
+        # values outside the fitting paths' range are held at its edge: a polynomial fitted
+        # there must not be extrapolated into the tails
+        v = np.clip(x[self.cols], lo[:, None], hi[:, None])
+        z = (v - mu[:, None]) / sd[:, None]
         out = np.empty((self.terms, n))
         out[0] = 1.0
         for c, (_, parent) in enumerate(self._mono[1:], start=1):
@@ -379,12 +383,49 @@ class Policy:
     sflows: list
     open_edges: dict          # k -> list of edge ids open at k
     beta: dict                # k -> {state: coefficients}
-    stats: list               # per date (mean, sd) of the regression variables
+    stats: list               # per date (mean, sd, min, max) of the regression variables
     in_sample: float          # fitted (high-biased) value at t = 0 of the initial state
+    refit: dict = field(default_factory=dict)   # (k, s) -> (cutoff, {state: coefficients})
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
         return {s: (np.zeros(B.shape[1]) if s not in b else predict(B, b[s])) for s in states}
+
+    def gains(self, prob: Problem, k: int, s: int, eids, x: np.ndarray) -> np.ndarray:
+        """(edges, paths) gain of each edge from state s over carrying on at date k (discounted
+        to today) on driver values x: the first-stage fit everywhere, the refit near and beyond
+        the exercise boundary (see :func:`fit`)."""
+        B = prob.basis.matrix(x, self.stats[k])
+        g = _edge_gains(prob, self.graph, k, s, eids, x, self.estimates(prob, k, B, _involved(
+            self.graph, s, eids)))
+        ref = self.refit.get((k, s))
+        if ref is not None:
+            cutoff, b2 = ref
+            near = np.flatnonzero(g.max(axis=0) >= cutoff)
+            if near.size:
+                Bn = B[:, near]
+                est = {t: predict(Bn, c) for t, c in b2.items()}
+                g[:, near] = _edge_gains(prob, self.graph, k, s, eids, x[:, near], est)
+        return g
+
+
+def _involved(graph, s, eids) -> set:
+    dead = {i for i, st in enumerate(graph.states) if st.abandoned}
+    return ({s} | {graph.edges[e].target for e in eids}) - dead
+
+
+def _edge_gains(prob, graph, k, s, eids, x, est) -> np.ndarray:
+    """(edges, paths): fitted value of the target plus the money, less carrying on in s."""
+    m = x.shape[-1]
+    out = np.empty((len(eids), m))
+    for j, e_id in enumerate(eids):
+        e = graph.edges[e_id]
+        money = np.broadcast_to(prob.money(e, k, x), (m,)) * prob.disc[k]
+        out[j] = (est[e.target] if e.target in est else 0.0) + money - est[s]
+    return out
+
+
+REFIT_SHARE = 0.25      # refit on at least this share of the paths (and twice the exercised)
 
 
 def least_squares(B: np.ndarray, Y: np.ndarray) -> np.ndarray:
@@ -425,6 +466,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
         if ids:
             open_edges[k] = ids
     beta: dict = {}
+    refit: dict = {}
     P = np.zeros((S, n))
     for k in range(T - 1, -1, -1):
         if progress:
@@ -454,18 +496,34 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
         est = {s: predict(B, beta[k][s]) for s in needed}
         P = Y.copy()
         for s, eids in _sources(graph, ids).items():
-            best = est[s]
-            realised = Y[s]
-            for e_id in eids:
+            g = _edge_gains(prob, graph, k, s, eids, x[k], est)
+            best = g.max(axis=0)
+            # Second stage (as Longstaff & Schwartz regress on the paths in the money): refit
+            # on the paths near and beyond the exercise boundary, where the decision is made
+            share = max(REFIT_SHARE, 2.0 * float((best > 0).mean()))
+            if B.shape[0] > 1 and share < 1.0 and share * n >= 20 * B.shape[0]:
+                cutoff = min(0.0, float(np.quantile(best, 1.0 - share)))
+                near = np.flatnonzero(best >= cutoff)
+                inv = sorted(_involved(graph, s, eids))
+                c2 = least_squares(B[:, near], Y[inv][:, near])
+                b2 = {t: c2[:, j] for j, t in enumerate(inv)}
+                refit[(k, s)] = (cutoff, b2)
+                Bn = B[:, near]
+                g[:, near] = _edge_gains(prob, graph, k, s, eids, x[k][:, near],
+                                         {t: predict(Bn, c) for t, c in b2.items()})
+            pick = g.argmax(axis=0)
+            go = g[pick, np.arange(n)] > 0
+            realised = Y[s].copy()
+            for j, e_id in enumerate(eids):
                 e = graph.edges[e_id]
-                m = prob.money(e, k, x[k]) * prob.disc[k]
-                cand = (est[e.target] if e.target not in dead else 0.0) + m
-                better = cand > best
-                best = np.where(better, cand, best)
-                realised = np.where(better, Y[e.target] + m, realised)
+                hit = go & (pick == j)
+                if hit.any():
+                    m = np.broadcast_to(prob.money(e, k, x[k]), (n,)) * prob.disc[k]
+                    tgt = Y[e.target] if e.target not in dead else 0.0
+                    realised[hit] = (tgt + m)[hit] if np.ndim(tgt) else m[hit]
             P[s] = realised
     return Policy(graph=graph, sflows=sflows, open_edges=open_edges, beta=beta, stats=stats,
-                  in_sample=float(P[graph.initial].mean()))
+                  in_sample=float(P[graph.initial].mean()), refit=refit)
 
 
 @dataclass
@@ -491,20 +549,16 @@ def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
         if idx.size == 0:
             continue
         xs = xk[:, idx]
-        B = prob.basis.matrix(xs, pol.stats[k])
-        targets = {graph.edges[e].target for e in eids} - dead
-        est = pol.estimates(prob, k, B, {s} | targets)
-        best = est[s]
-        choice = np.full(idx.size, -1)
+        g = pol.gains(prob, k, s, eids, xs)
+        pick = g.argmax(axis=0)
+        go = g[pick, np.arange(idx.size)] > 0
+        choice = np.where(go, np.asarray(eids)[pick], -1)
         cash = np.zeros(idx.size)
-        for e_id in eids:
-            e = graph.edges[e_id]
-            m = np.broadcast_to(prob.money(e, k, xs), (idx.size,))
-            cand = (est[e.target] if e.target not in dead else 0.0) + m * prob.disc[k]
-            better = cand > best
-            best = np.where(better, cand, best)
-            choice = np.where(better, e_id, choice)
-            cash = np.where(better, m, cash)
+        for j, e_id in enumerate(eids):
+            sel = go & (pick == j)
+            if sel.any():
+                m = np.broadcast_to(prob.money(graph.edges[e_id], k, xs), (idx.size,))
+                cash[sel] = m[sel]
         hit = choice >= 0
         if hit.any():
             tgt = np.array([graph.edges[c].target for c in choice[hit]])

@@ -671,22 +671,14 @@ def _action(e) -> str:
 
 
 def _gains(prob, pol, k, s, xg):
-    """Gain over carrying on of each edge from s open at k, on driver values xg (d, m)."""
+    """Gain over carrying on of each edge from s open at k, on driver values xg (d, m), in
+    money of that date."""
     graph = pol.graph
-    dead = {i for i, st in enumerate(graph.states) if st.abandoned}
     eids = [e for e in pol.open_edges.get(k, []) if graph.edges[e].source == s]
     if not eids:
         return {}
-    B = prob.basis.matrix(xg, pol.stats[k])
-    targets = {graph.edges[e].target for e in eids} - dead
-    est = pol.estimates(prob, k, B, {s} | targets)
-    out = {}
-    for e_id in eids:
-        e = graph.edges[e_id]
-        m = np.broadcast_to(prob.money(e, k, xg), (xg.shape[-1],)) * prob.disc[k]
-        cand = (est[e.target] if e.target not in dead else 0.0) + m
-        out[e_id] = (cand - est[s]) / prob.disc[k]
-    return out
+    g = pol.gains(prob, k, s, eids, xg) / prob.disc[k]
+    return {e_id: g[j] for j, e_id in enumerate(eids)}
 
 
 def _crossings(grid, gain):
