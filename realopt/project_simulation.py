@@ -215,6 +215,9 @@ def finish(b, underlying, rights) -> None:
     """Cross-checks: every simulated driver has risk_neutral; basis small enough for the paths;
     map_drivers name simulated drivers."""
     spec = getattr(b, "simulation_spec", None)
+    if is_simulation(b) and isinstance(b.tree.data, dict) and "lattice" in b.tree.data:
+        b.warn(("lattice",), "ignored under valuation: simulation (decision dates come from "
+               "simulation.steps_per_year)")
     if not is_simulation(b) or underlying is None or underlying.drivers is None:
         return
     stochastic = [dr for dr in underlying.drivers.drivers if dr.process != "schedule"]

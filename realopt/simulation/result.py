@@ -20,7 +20,8 @@ import numpy as np
 from .. import CAUTION
 from ..errors import ValuationError
 from ..model import Project, Switch
-from ..rights import build_state_graph, prepared_rights, requirement_closure, usable_subset
+from ..rights import (build_state_graph, prepared_rights, requirement_closure,
+                      structure_warnings, usable_subset)
 from . import lsm
 from .paths import change_measure, dynamics, simulate
 
@@ -317,7 +318,8 @@ def plan(project: Project) -> SimPlan:
     if spec.upper_bound_paths:
         seconds += spec.upper_bound_paths * spec.upper_bound_inner * prob.T * (
             S + d + terms) * 30e-9
-    warnings = list(project.warnings)
+    warnings = list(project.warnings) + structure_warnings(
+        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
     return SimPlan(paths=n, dates=prob.T, decision_dates=dec, horizon=float(prob.times[-1]),
                    drivers=d, regression_terms=terms, states=S, solves=solves,
                    memory_bytes=memory, seconds_estimate=seconds, warnings=tuple(warnings))
@@ -553,12 +555,8 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         out_rights.append(_right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se,
                                        thresholds.get(r.name, ()), cf_rules.get(r.name),
                                        maps, fmt))
-    warnings = list(project.warnings)
-    first, last = prob.model.years
-    for r in rights:
-        if r.window[1] > last + 1e-9:
-            warnings.append(f"'{r.name}' runs past the last cash-flow year ({last}); the project "
-                            "pays nothing after it.")
+    warnings = list(project.warnings) + structure_warnings(
+        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
     info = lsm_info(project, prob, n, anti, open_by, graph, pol, time.monotonic() - t_start)
     return SimulationAppraisal(
         project=project, present_value=present_value, investment_pv=investment_pv,
