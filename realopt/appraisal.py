@@ -238,7 +238,12 @@ def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, flo
 
 
 def appraise(project: Project) -> Appraisal:
-    """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
+    """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
+    (``valuation: simulation`` goes to realopt.simulation: a SimulationAppraisal.)"""
+    if getattr(project, "valuation", "lattice") == "simulation":
+        from .simulation import appraise as simulate
+
+        return simulate(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "
