@@ -634,13 +634,17 @@ def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, 
         for s in live:
             out[s] = est[s]
         for s, eids in _sources(graph, pol.open_edges.get(k, [])).items():
-            best = out[s].copy()
-            for e_id in eids:
-                e = graph.edges[e_id]
-                cand = (est[e.target] if e.target not in dead else 0.0) + np.broadcast_to(
-                    prob.money(e, k, xk), (m,)) * prob.disc[k]
-                best = np.maximum(best, cand)
-            out[s] = best
+            g = _edge_gains(prob, graph, k, s, eids, xk, est)
+            carry = out[s].copy()
+            ref = pol.refit.get((k, s))
+            if ref is not None:                  # the refit near the boundary, as decided
+                cutoff, b2 = ref
+                near = np.flatnonzero(g.max(axis=0) >= cutoff)
+                if near.size:
+                    est2 = {t: predict(B[:, near], c) for t, c in b2.items()}
+                    g[:, near] = _edge_gains(prob, graph, k, s, eids, xk[:, near], est2)
+                    carry[near] = est2[s]
+            out[s] = carry + np.maximum(g.max(axis=0), 0.0)
         return out
 
     # increments dM[k] (S, n) for k = 1..T-1
