@@ -482,3 +482,19 @@ def test_simulation_demo_reads_in_prices(simulation_demos):
         assert all(0.0 <= u <= 1.0 for r in a.rights for u in r.use_real_world)
         assert sum(r.shapley_value for r in a.rights) == pytest.approx(a.flexibility_value,
                                                                        abs=1e-9)
+
+
+def test_sale_threshold_in_the_driver_follows_the_lattice_boundary():
+    # the exercise boundary of the American put read off the simulation (in S) against the
+    # project's own lattice (in project value, here equal to S): the fitted boundary carries
+    # regression error, so within 1.0 (2.5% of the salvage) at every tenth date
+    a = realopt.appraise(put_project(paths=50000))
+    lat = realopt.appraise(put_project(valuation="lattice", lattice=50))
+    ref = {round(t.year, 6): t.upper for t in lat.right("Sell").thresholds
+           if not t.never and t.upper is not None}
+    checked = 0
+    for t in a.right("Sell").thresholds[5:-1:5]:
+        assert t.driver == "S" and t.upper is not None
+        assert abs(t.upper - ref[round(t.year, 6)]) < 1.0, (t.year, t.upper, ref[round(t.year, 6)])
+        checked += 1
+    assert checked >= 8
