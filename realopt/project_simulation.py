@@ -15,7 +15,6 @@ Keys handled here:
 from __future__ import annotations
 
 import difflib
-import math
 from math import comb
 
 from . import model

@@ -6,7 +6,6 @@ risk-neutral drift r: its value at any t <= 2 is S_t, so a sale right for K is a
 """
 from __future__ import annotations
 
-import dataclasses
 import math
 
 import numpy as np
@@ -109,7 +108,8 @@ underlying:
   years: [2, 2]
   drivers:
     A: {process: gbm, start: 100, volatility: 0.3, risk_neutral: {drift: 0.05}}
-    B: {process: gbm, start: 95, volatility: 0.2, risk_neutral: {forward: {1: 99.87075415572, 2: 104.99123721719}}}
+    B: {process: gbm, start: 95, volatility: 0.2,
+        risk_neutral: {forward: {1: 99.87075415572, 2: 104.99123721719}}}
   correlation: [[A, B, 0.4]]
   cash_flow: A
 investment: {cost: 0}
@@ -348,8 +348,8 @@ def test_cli_check_and_appraise_json(tmp_path):
     t = run("appraise", str(f))
     assert t.returncode == 0 and "+-" in t.stdout and "Caution" in t.stdout
     g = tmp_path / "big.yaml"
-    g.write_text(f.read_text().replace("exercise: bermudan,\n     dates: [1, 2, 3, 4, 5, 6, 7, 8, 9]",
-                                       "exercise: american"))
+    bermudan = "exercise: bermudan,\n     dates: [1, 2, 3, 4, 5, 6, 7, 8, 9]"
+    g.write_text(f.read_text().replace(bermudan, "exercise: american"))
     big = run("appraise", str(g), "--set", "simulation.paths=5000000", "--set",
               "simulation.steps_per_year=365")
     assert big.returncode == 1 and "--allow-large" in big.stderr and "Traceback" not in big.stderr

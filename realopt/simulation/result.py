@@ -17,7 +17,6 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .. import CAUTION
 from ..errors import ValuationError
 from ..model import Project, Switch
 from ..rights import (build_state_graph, prepared_rights, requirement_closure,
@@ -540,8 +539,9 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
             ub, ub_se = expanded, 0.0
         upper = {"value": ub, "standard_error": ub_se,
                  "paths": spec.upper_bound_paths, "inner": spec.upper_bound_inner,
-                 "method": "dual (Andersen & Broadie 2004; martingale from the fitted values, "
-                           "one-step inner simulation)"}
+                 "method": "dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) "
+                           "with the martingale of the fitted value function, one-step inner "
+                           "draws"}
     if prog:
         prog.close()
 

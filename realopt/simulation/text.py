@@ -33,15 +33,17 @@ def check_text(path, project, memory) -> str:
                      f"{r.window[1]:g})")
     if not project.rights:
         lines.append("rights: none (the expanded NPV equals the static NPV)")
+    pairs = ", antithetic pairs" if spec.antithetic and pl.paths > 1 else ""
     paths = (f"{pl.paths:,} paths to fit the policy and {pl.paths:,} independent paths to value "
-             f"it (seed {spec.seed}{', antithetic pairs' if spec.antithetic and pl.paths > 1 else ''})"
+             f"it (seed {spec.seed}{pairs})"
              if pl.paths > 1 else "1 path (every driver is deterministic: exact dynamic "
              "programming)")
     lines.append(f"simulation: least-squares Monte Carlo, {paths}; {pl.dates} dates to year "
                  f"{pl.horizon:g}, {pl.decision_dates} with a decision ({spec.steps_per_year} a "
                  f"year inside american windows); regression on {pl.regression_terms} terms "
-                 f"(polynomial of degree {spec.basis} in {len([d for d in stoch if d.volatility > 0])} "
-                 "drivers)" + (f"; dual upper bound on {spec.upper_bound_paths:,} paths x "
+                 f"(polynomial of degree {spec.basis} in "
+                 f"{len([d for d in stoch if d.volatility > 0])} drivers)"
+                 + (f"; dual upper bound on {spec.upper_bound_paths:,} paths x "
                                f"{spec.upper_bound_inner} inner draws" if spec.upper_bound_paths
                                else ""))
     lines.append(f"size: {pl.states} states, {pl.solves} subsets of rights fitted and valued; "
