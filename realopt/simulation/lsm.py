@@ -385,7 +385,8 @@ class Policy:
     beta: dict                # k -> {state: coefficients}
     stats: list               # per date (mean, sd, min, max) of the regression variables
     in_sample: float          # fitted (high-biased) value at t = 0 of the initial state
-    refit: dict = field(default_factory=dict)   # (k, s) -> (cutoff, {state: coefficients})
+    refit: dict = field(default_factory=dict)   # (k, s) -> (cutoff, {state: coef}, unc)
+    unc: dict = field(default_factory=dict)     # k -> first-stage uncertainty (see _unc)
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
@@ -399,13 +400,15 @@ class Policy:
         g = _edge_gains(prob, self.graph, k, s, eids, x, self.estimates(prob, k, B, _involved(
             self.graph, s, eids)))
         ref = self.refit.get((k, s))
-        if ref is not None:
-            cutoff, b2 = ref
-            near = np.flatnonzero(g.max(axis=0) >= cutoff)
-            if near.size:
-                Bn = B[:, near]
-                est = {t: predict(Bn, c) for t, c in b2.items()}
-                g[:, near] = _edge_gains(prob, self.graph, k, s, eids, x[:, near], est)
+        if ref is None:
+            return g - MARGIN * _gain_sd(self.graph, s, eids, B, self.unc.get(k))
+        cutoff, b2, unc = ref
+        near = np.flatnonzero(g.max(axis=0) >= cutoff)
+        if near.size:
+            Bn = B[:, near]
+            est = {t: predict(Bn, c) for t, c in b2.items()}
+            g[:, near] = _edge_gains(prob, self.graph, k, s, eids, x[:, near], est) \
+                - MARGIN * _gain_sd(self.graph, s, eids, Bn, unc)
         return g
 
 
@@ -426,6 +429,38 @@ def _edge_gains(prob, graph, k, s, eids, x, est) -> np.ndarray:
 
 
 REFIT_SHARE = 0.25      # refit on at least this share of the paths (and twice the exercised)
+MARGIN = 0.5            # exercise only where the fitted gain exceeds this many standard errors
+
+
+def _unc(B: np.ndarray, Y: np.ndarray, coef: np.ndarray, states) -> tuple:
+    """(inverse of B B', residual covariance of the regressed states, their order): what the
+    standard error of a fitted gain needs."""
+    k, n = B.shape
+    G = np.einsum("in,jn->ij", B, B)
+    try:
+        Ginv = np.linalg.inv(G + 1e-10 * (np.trace(G) / k) * np.eye(k))
+    except np.linalg.LinAlgError:
+        Ginv = np.linalg.pinv(G)
+    R = Y - np.einsum("im,in->mn", coef, B)
+    cov = np.einsum("an,bn->ab", R, R) / max(1, n - k)
+    return Ginv, cov, {t: j for j, t in enumerate(states)}
+
+
+def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
+    """(edges, paths) standard error of each fitted gain: h(x) (var_t + var_s - 2 cov_ts) with
+    the leverage h(x) = b(x)' (B B')^-1 b(x) (zero where no uncertainty was recorded)."""
+    if unc is None:
+        return np.zeros((len(eids), B.shape[1]))
+    Ginv, cov, pos = unc
+    kk = min(B.shape[0], Ginv.shape[0])
+    h = np.einsum("in,ij,jn->n", B[:kk], Ginv[:kk, :kk], B[:kk])
+    out = np.empty((len(eids), B.shape[1]))
+    i = pos[s]
+    for j, e_id in enumerate(eids):
+        t = pos.get(graph.edges[e_id].target)
+        var = cov[i, i] + (0.0 if t is None else cov[t, t] - 2.0 * cov[i, t])
+        out[j] = np.sqrt(np.maximum(h * max(var, 0.0), 0.0))
+    return out
 
 
 def least_squares(B: np.ndarray, Y: np.ndarray) -> np.ndarray:
@@ -467,6 +502,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             open_edges[k] = ids
     beta: dict = {}
     refit: dict = {}
+    unc: dict = {}
     P = np.zeros((S, n))
     for k in range(T - 1, -1, -1):
         if progress:
@@ -493,11 +529,13 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
         if not ids:
             P = Y
             continue
+        unc[k] = _unc(B, Y[needed], coef, needed)
         est = {s: predict(B, beta[k][s]) for s in needed}
         P = Y.copy()
         for s, eids in _sources(graph, ids).items():
             g = _edge_gains(prob, graph, k, s, eids, x[k], est)
             best = g.max(axis=0)
+            margin_done = False
             # Second stage (as Longstaff & Schwartz regress on the paths in the money): refit
             # on the paths near and beyond the exercise boundary, where the decision is made
             share = max(REFIT_SHARE, 2.0 * float((best > 0).mean()))
@@ -505,12 +543,17 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 cutoff = min(0.0, float(np.quantile(best, 1.0 - share)))
                 near = np.flatnonzero(best >= cutoff)
                 inv = sorted(_involved(graph, s, eids))
-                c2 = least_squares(B[:, near], Y[inv][:, near])
-                b2 = {t: c2[:, j] for j, t in enumerate(inv)}
-                refit[(k, s)] = (cutoff, b2)
                 Bn = B[:, near]
+                c2 = least_squares(Bn, Y[inv][:, near])
+                b2 = {t: c2[:, j] for j, t in enumerate(inv)}
+                u2 = _unc(Bn, Y[inv][:, near], c2, inv)
+                refit[(k, s)] = (cutoff, b2, u2)
                 g[:, near] = _edge_gains(prob, graph, k, s, eids, x[k][:, near],
-                                         {t: predict(Bn, c) for t, c in b2.items()})
+                                         {t: predict(Bn, c) for t, c in b2.items()}) \
+                    - MARGIN * _gain_sd(graph, s, eids, Bn, u2)
+                margin_done = True
+            if not margin_done:
+                g = g - MARGIN * _gain_sd(graph, s, eids, B, unc[k])
             pick = g.argmax(axis=0)
             go = g[pick, np.arange(n)] > 0
             realised = Y[s].copy()
@@ -523,7 +566,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                     realised[hit] = (tgt + m)[hit] if np.ndim(tgt) else m[hit]
             P[s] = realised
     return Policy(graph=graph, sflows=sflows, open_edges=open_edges, beta=beta, stats=stats,
-                  in_sample=float(P[graph.initial].mean()), refit=refit)
+                  in_sample=float(P[graph.initial].mean()), refit=refit, unc=unc)
 
 
 @dataclass
@@ -638,7 +681,7 @@ def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, 
             carry = out[s].copy()
             ref = pol.refit.get((k, s))
             if ref is not None:                  # the refit near the boundary, as decided
-                cutoff, b2 = ref
+                cutoff, b2, _ = ref
                 near = np.flatnonzero(g.max(axis=0) >= cutoff)
                 if near.size:
                     est2 = {t: predict(B[:, near], c) for t, c in b2.items()}
