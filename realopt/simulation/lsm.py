@@ -401,14 +401,14 @@ class Policy:
             self.graph, s, eids)))
         ref = self.refit.get((k, s))
         if ref is None:
-            return g - MARGIN * _gain_sd(self.graph, s, eids, B, self.unc.get(k))
+            return _apply_margin(g, self.graph, s, eids, B, self.unc.get(k))
         cutoff, b2, unc = ref
         near = np.flatnonzero(g.max(axis=0) >= cutoff)
         if near.size:
             Bn = B[:, near]
             est = {t: predict(Bn, c) for t, c in b2.items()}
-            g[:, near] = _edge_gains(prob, self.graph, k, s, eids, x[:, near], est) \
-                - MARGIN * _gain_sd(self.graph, s, eids, Bn, unc)
+            g[:, near] = _apply_margin(_edge_gains(prob, self.graph, k, s, eids, x[:, near],
+                                                   est), self.graph, s, eids, Bn, unc)
         return g
 
 
@@ -432,18 +432,28 @@ REFIT_SHARE = 0.25      # refit on at least this share of the paths (and twice t
 MARGIN = 0.5            # exercise only where the fitted gain exceeds this many standard errors
 
 
-def _unc(B: np.ndarray, Y: np.ndarray, coef: np.ndarray, states) -> tuple:
-    """(inverse of B B', residual covariance of the regressed states, their order): what the
-    standard error of a fitted gain needs."""
+def _unc(B: np.ndarray, Y: np.ndarray, coef: np.ndarray, states, G: np.ndarray) -> tuple:
+    """(inverse of B B' = ``G``, residual covariance of the regressed states, their order): what
+    the standard error of a fitted gain needs."""
     k, n = B.shape
-    G = np.einsum("in,jn->ij", B, B)
     try:
         Ginv = np.linalg.inv(G + 1e-10 * (np.trace(G) / k) * np.eye(k))
     except np.linalg.LinAlgError:
         Ginv = np.linalg.pinv(G)
-    R = Y - np.einsum("im,in->mn", coef, B)
+    R = np.array([Y[j] - predict(B, coef[:, j]) for j in range(Y.shape[0])])
     cov = np.einsum("an,bn->ab", R, R) / max(1, n - k)
     return Ginv, cov, {t: j for j, t in enumerate(states)}
+
+
+def _apply_margin(g: np.ndarray, graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
+    """``g`` less MARGIN standard errors where some gain is positive (elsewhere the decision
+    is to carry on either way); in place, returns g."""
+    if unc is None:
+        return g
+    pos = np.flatnonzero(g.max(axis=0) > 0)
+    if pos.size:
+        g[:, pos] -= MARGIN * _gain_sd(graph, s, eids, B[:, pos], unc)
+    return g
 
 
 def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
@@ -463,20 +473,21 @@ def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
     return out
 
 
-def least_squares(B: np.ndarray, Y: np.ndarray) -> np.ndarray:
+def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     """Coefficients (k, m) of Y (m, n) on the rows of B (k, n) by the normal equations (the
     basis is standardised, so B B' is well conditioned at the degrees allowed); a tiny ridge
     guards collinear rows, an SVD solve is the fallback. Sums over paths by einsum (fixed order,
-    no threaded BLAS)."""
+    no threaded BLAS). ``gram``: also return B B'."""
     G = np.einsum("in,jn->ij", B, B)
     rhs = np.einsum("in,mn->im", B, Y)
     k = G.shape[0]
     ridge = 1e-10 * (np.trace(G) / k if k else 1.0)
     try:
         L = np.linalg.cholesky(G + ridge * np.eye(k))
-        return np.linalg.solve(L.T, np.linalg.solve(L, rhs))
+        coef = np.linalg.solve(L.T, np.linalg.solve(L, rhs))
     except np.linalg.LinAlgError:
-        return np.linalg.lstsq(B.T, Y.T, rcond=None)[0]
+        coef = np.linalg.lstsq(B.T, Y.T, rcond=None)[0]
+    return (coef, G) if gram else coef
 
 
 def _sources(graph, edges):
@@ -524,12 +535,12 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             needed |= {e.source, e.target}
         needed = sorted(needed - dead)
         B = prob.basis.matrix(x[k], stats[k])
-        coef = least_squares(B, Y[needed])
+        coef, G = least_squares(B, Y[needed], gram=True)
         beta[k] = {s: coef[:, j] for j, s in enumerate(needed)}
         if not ids:
             P = Y
             continue
-        unc[k] = _unc(B, Y[needed], coef, needed)
+        unc[k] = _unc(B, Y[needed], coef, needed, G)
         est = {s: predict(B, beta[k][s]) for s in needed}
         P = Y.copy()
         for s, eids in _sources(graph, ids).items():
@@ -544,16 +555,17 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 near = np.flatnonzero(best >= cutoff)
                 inv = sorted(_involved(graph, s, eids))
                 Bn = B[:, near]
-                c2 = least_squares(Bn, Y[inv][:, near])
+                Yn = Y[inv][:, near]
+                c2, G2 = least_squares(Bn, Yn, gram=True)
                 b2 = {t: c2[:, j] for j, t in enumerate(inv)}
-                u2 = _unc(Bn, Y[inv][:, near], c2, inv)
+                u2 = _unc(Bn, Yn, c2, inv, G2)
                 refit[(k, s)] = (cutoff, b2, u2)
-                g[:, near] = _edge_gains(prob, graph, k, s, eids, x[k][:, near],
-                                         {t: predict(Bn, c) for t, c in b2.items()}) \
-                    - MARGIN * _gain_sd(graph, s, eids, Bn, u2)
+                g[:, near] = _apply_margin(_edge_gains(
+                    prob, graph, k, s, eids, x[k][:, near],
+                    {t: predict(Bn, c) for t, c in b2.items()}), graph, s, eids, Bn, u2)
                 margin_done = True
             if not margin_done:
-                g = g - MARGIN * _gain_sd(graph, s, eids, B, unc[k])
+                g = _apply_margin(g, graph, s, eids, B, unc[k])
             pick = g.argmax(axis=0)
             go = g[pick, np.arange(n)] > 0
             realised = Y[s].copy()
