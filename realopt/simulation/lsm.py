@@ -476,9 +476,8 @@ def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
 def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     """Coefficients (k, m) of Y (m, n) on the rows of B (k, n) by the normal equations (the
     basis is standardised, so B B' is well conditioned at the degrees allowed); a tiny ridge
-    guards collinear rows, an SVD solve is the fallback. Sums over paths by einsum (fixed order,
-    no threaded BLAS). ``gram``: also return B B'."""
-    G = np.einsum("in,jn->ij", B, B)
+    guards collinear rows, an SVD solve is the fallback. ``gram``: also return B B'."""
+    G = B @ B.T
     rhs = np.einsum("in,mn->im", B, Y)
     k = G.shape[0]
     ridge = 1e-10 * (np.trace(G) / k if k else 1.0)

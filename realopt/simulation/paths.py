@@ -125,6 +125,7 @@ def simulate(dyn: Dynamics, times, paths: int, seed: int, stream: str,
         raise ValuationError("internal: antithetic paths need an even number of paths")
     gen = generator(seed, stream)
     y = np.repeat(dyn.y0[:, None], paths, axis=1)
+    zbuf = np.empty((d, half))
     out[0] = np.exp(y)
     means = np.array([dyn.mean(t) for t in times])          # (T, d)
     chol_cache: dict = {}
@@ -134,12 +135,19 @@ def simulate(dyn: Dynamics, times, paths: int, seed: int, stream: str,
         if key not in chol_cache:
             chol_cache[key] = _cholesky_psd(dyn.step_cov(h))
         L = chol_cache[key]
-        z = gen.standard_normal((d, half))
-        if antithetic:
-            z = np.concatenate([z, -z], axis=1)
+        gen.standard_normal(out=zbuf)
         decay = np.exp(-dyn.speed * h)
-        y = means[k][:, None] + (y - means[k - 1][:, None]) * decay[:, None] + L @ z
-        out[k] = np.exp(y)
+        y -= means[k - 1][:, None]
+        y *= decay[:, None]
+        y += means[k][:, None]
+        for i in range(d):                  # y += L z, a fixed order of sums, no BLAS
+            for j in range(i + 1):
+                if L[i, j] != 0.0:
+                    step = L[i, j] * zbuf[j]
+                    y[i, :half] += step
+                    if antithetic:
+                        y[i, half:] -= step         # the antithetic path takes -z
+        np.exp(y, out=out[k])
     return out
 
 
