@@ -4,12 +4,18 @@ Money is in the project's currency and unit, valued today (t = 0). ``static_npv`
 no flexibility; ``expanded_npv`` uses every right optimally on the lattice. Each right's
 ``standalone_value`` is the flexibility with it alone (plus the rights it requires); its
 ``shapley_value`` is its exact Shapley share of the flexibility value over all subsets of rights
-(a right whose ``requires`` are missing from a subset cannot be used in that subset).
+(a right whose ``requires`` are missing from a subset cannot be used in that subset; a requirement
+on the defer right always holds).
+
+Every subset of rights values the same base project: no right used, every switch in its start
+mode (scale_start * the cash flows + the start mode's fixed flows). ``present_value`` is that base's
+value, so ``static_npv = present_value - investment_pv`` always; ``cash_flow_value`` is the plain
+DCF of the file's flows (equal to ``present_value`` when every start mode is the plain project).
 """
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -17,8 +23,9 @@ from . import CAUTION
 from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project, Switch
-from .rights import (StateGraph, build_state_graph, prepared_rights, requirement_closure,
-                     structure_warnings, usable_subset)
+from .rights import (StateGraph, base_description, base_scale_fixed, build_state_graph,
+                     held_switches, prepared_rights, requirement_closure, structure_warnings,
+                     usable_subset)
 from .underlying import ResolvedUnderlying, resolve
 
 MAX_RIGHTS = 10
@@ -67,6 +74,8 @@ class RightValue:
     use_real_world: tuple[float, ...]
     use_measure: str                  # what the chance of use counts
     rule: str
+    # switches: mode name -> (risk-neutral, real-world) share of paths in that mode at use_years
+    mode_shares: dict | None = None
 
 
 @dataclass(frozen=True)
@@ -104,18 +113,26 @@ class Appraisal:
     fan: dict                         # percentile -> array of project values (real-world)
     expected_real_world: np.ndarray   # mean project value at fan_years, real-world drift
     expected_risk_neutral: np.ndarray
+    present_value_stderr: float = 0.0  # standard error of a simulated V0; 0.0 when exact
+    cash_flow_value: float | None = None   # plain DCF of the file's flows (no start mode)
+    base: str = ""                         # one line: the base project every subset values
+    headline_warnings: tuple[str, ...] = ()   # warnings that bear on the headline numbers
 
     def right(self, name: str) -> RightValue:
         return next(r for r in self.rights if r.name == name)
 
     def to_dict(self) -> dict:
-        """The DESIGN.md results contract (plain JSON types)."""
+        """The results contract of docs/design.md, section 6 (plain JSON types)."""
         p = self.project
         return {
             "project": p.name,
             "currency": p.currency,
             "unit": p.unit,
             "present_value": self.present_value,
+            "present_value_stderr": self.present_value_stderr,
+            "cash_flow_value": (self.present_value if self.cash_flow_value is None
+                                else self.cash_flow_value),
+            "base": self.base,
             "investment_pv": self.investment_pv,
             "static_npv": self.static_npv,
             "expanded_npv": self.expanded_npv,
@@ -128,6 +145,7 @@ class Appraisal:
             "rights": [_right_dict(r) for r in self.rights],
             "lattice": {k: getattr(self.lattice, k) for k in LatticeInfo.__dataclass_fields__},
             "warnings": list(self.warnings),
+            "headline_warnings": list(self.headline_warnings),
             "caution": CAUTION,
             "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
             "standard_error": {"present_value": 0.0, "expanded_npv": 0.0, "flexibility_value": 0.0},
@@ -158,6 +176,11 @@ def _thin(thresholds, limit: int = 240):
 
 
 def _right_dict(r: RightValue) -> dict:
+    use = {"years": list(r.use_years), "measure": r.use_measure,
+           "risk_neutral": list(r.use_risk_neutral), "real_world": list(r.use_real_world)}
+    if r.mode_shares is not None:
+        use["modes"] = {m: {"risk_neutral": list(rn), "real_world": list(rw)}
+                        for m, (rn, rw) in r.mode_shares.items()}
     return {
         "name": r.name, "type": r.type, "window": list(r.window), "exercise": r.exercise,
         "standalone_value": r.standalone_value, "shapley_value": r.shapley_value,
@@ -165,9 +188,7 @@ def _right_dict(r: RightValue) -> dict:
         "thresholds": [{"year": t.year, "state": t.state, "action": t.action,
                         "exercise_above": t.lower, "exercise_below": t.upper, "never": t.never}
                        for t in _thin(r.thresholds)],
-        "chance_of_use": {"years": list(r.use_years), "measure": r.use_measure,
-                          "risk_neutral": list(r.use_risk_neutral),
-                          "real_world": list(r.use_real_world)},
+        "chance_of_use": use,
     }
 
 
@@ -181,7 +202,12 @@ class _Valuer:
         self.grid: Grid = build_grid(project, self.res)
         self.rights = prepared_rights(project)
         self.investment_pv = project.investment.present_value(project.market)
-        self.static_npv = self.res.present_value - self.investment_pv
+        scale, fixed = base_scale_fixed(self.rights)
+        self.plain = scale == 1.0 and fixed == 0.0
+        # the base project: every switch in its start mode (the same in every subset)
+        self.base_value = (self.res.present_value if self.plain else
+                           scale * self.res.present_value + fixed * self.grid.fixed_pv)
+        self.static_npv = self.base_value - self.investment_pv
         self._cache: dict[frozenset, float] = {}
 
     def value(self, names) -> float:
@@ -191,7 +217,7 @@ class _Valuer:
         if not key:
             return self.static_npv
         if key not in self._cache:
-            graph = build_state_graph(usable)
+            graph = build_state_graph(usable, held=held_switches(self.rights, usable))
             sol = solve(self.grid, graph)
             self._cache[key] = self._npv(sol, graph)
         return self._cache[key]
@@ -269,12 +295,14 @@ def appraise(project: Project) -> Appraisal:
         _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
                      (rw_state, rw_ex), sample, fmt, v0)
         for r in val.rights)
-    warnings = list(project.warnings) + list(grid.warnings) + structure_warnings(
-        graph, val.res.last_flow_year, grid.horizon)
+    headline = structure_warnings(graph, val.res.last_flow_year, grid.horizon,
+                                  terminal_value=val.res.terminal_value)
+    warnings = list(project.warnings) + list(grid.warnings) + headline
+    headline += _defer_cost_warnings(val.rights, fmt)    # the loader's located form is above
     fan_steps = _sample_steps(grid.steps, limit=120)
     fan_years, fan, mean_rw, mean_rn = _fan(grid, fan_steps)
     return Appraisal(
-        project=project, present_value=v0, investment_pv=val.investment_pv,
+        project=project, present_value=val.base_value, investment_pv=val.investment_pv,
         static_npv=val.static_npv, expanded_npv=full, flexibility_value=flex,
         interaction=flex - sum(standalone.values()),
         decision_today=_decision_today(sol, graph, full, fmt),
@@ -288,7 +316,33 @@ def appraise(project: Project) -> Appraisal:
         volatility=val.res.volatility, volatility_stderr=val.res.volatility_stderr,
         volatility_method=val.res.volatility_method, warnings=tuple(warnings),
         state_graph=graph, decision_maps=_decision_maps(sol, graph),
-        fan_years=fan_years, fan=fan, expected_real_world=mean_rw, expected_risk_neutral=mean_rn)
+        fan_years=fan_years, fan=fan, expected_real_world=mean_rw, expected_risk_neutral=mean_rn,
+        present_value_stderr=abs(base_scale_fixed(val.rights)[0]) * (
+            val.res.present_value_stderr or 0.0),
+        cash_flow_value=v0, base=base_description(val.rights, _base_what(project)),
+        headline_warnings=tuple(headline))
+
+
+def _base_what(project: Project) -> str:
+    u = project.underlying
+    if u.drivers is not None:
+        return "the cash flows of the drivers as given"
+    if u.present_value is not None and not u.cash_flows:
+        return "the project value as given"
+    return "the cash flows as given"
+
+
+def _defer_cost_warnings(rights, fmt) -> list[str]:
+    """A defer right whose cost at year 0 differs from the investment's present value."""
+    out = []
+    for r in rights:
+        if r.kind == "defer" and r.cost.today is not None:
+            later = replace(r.cost, today=None)
+            out.append(f"'{r.name}': committing today costs the investment's present value "
+                       f"({fmt(r.cost.today)}), the same commitment as the static NPV; the "
+                       f"right's cost ({later.describe(fmt.template)}, {fmt(later.at(0.0))} at "
+                       "year 0) applies at its later exercise dates.")
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -406,14 +460,26 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
     for s in prim:
         ids = [k for k in edge_ids if graph.edges[k].source == s]
         thr += _thresholds(sol, s, ids, range(grid.steps + 1))
+    mode_shares = None
     if isinstance(r, Switch):
+        # first moves out of the start mode: a forward pass that drops the paths once they move
+        first = set(edge_ids)
+        rn_use = np.cumsum(occupancy(sol, grid.probability, absorb=first)[1][:, edge_ids].sum(
+            axis=1))
+        rw_use = np.cumsum(occupancy(sol, grid.real_probability, absorb=first)[1][
+            :, edge_ids].sum(axis=1))
         switches = [s for s in graph.rights if isinstance(s, Switch)]
         k = switches.index(r)
-        away = [i for i, s in enumerate(graph.states)
-                if not s.abandoned and s.invested and s.modes[k] != r.start]
-        rn_use = rn[0][:, away].sum(axis=1)
-        rw_use = rw[0][:, away].sum(axis=1)
-        measure = f"chance of being in a mode other than '{r.start}' at each date"
+        mode_shares = {}
+        for m in r.modes:
+            cols = [i for i, s in enumerate(graph.states)
+                    if not s.abandoned and s.invested and s.modes[k] == m.name]
+            mode_shares[m.name] = tuple(
+                tuple(float(min(1.0, max(0.0, x))) for x in occ[0][:, cols].sum(axis=1)[sample])
+                for occ in (rn, rw))
+        measure = (f"chance of having switched out of '{r.start}' at least once by each date "
+                   "(never falls); the mode shares are the chance of being in each mode at "
+                   "each date (the project invested and not abandoned)")
     else:
         rn_use = np.cumsum(rn[1][:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(rw[1][:, edge_ids].sum(axis=1))
@@ -425,9 +491,9 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
         thresholds=tuple(thr), use_years=tuple(float(grid.times[i]) for i in sample),
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
-        use_measure=measure,
+        use_measure=measure, mode_shares=mode_shares,
         rule=_rule(r, [t for t in thr if _plausible(grid, t)], side, fmt, v0,
-                   float(rw_use[-1]), grid.horizon))
+                   float(min(1.0, rw_use[-1])), grid.horizon))
 
 
 def _side(thr) -> str | None:
@@ -456,6 +522,9 @@ def _when(r) -> str:
 
 def _what(r, money: str) -> str:
     if r.kind == "defer":
+        if r.cost.today is not None:
+            return (f"commit the investment (cost {money.format(r.cost.today)} today, then "
+                    f"{replace(r.cost, today=None).describe(money)})")
         return f"commit the investment (cost {r.cost.describe(money)})"
     if r.kind == "expand":
         return f"expand scale by {r.scale:.0%} for {r.cost.describe(money)}"
@@ -476,7 +545,7 @@ def _plausible(grid: Grid, t: Threshold) -> bool:
     sd = 0.5 * math.log(grid.up / grid.down) * math.sqrt(max(i, 1))
     g = grid.probability * grid.up + (1 - grid.probability) * grid.down
     centre = grid.log_v0 + grid.log_carry[i] + i * math.log(g) + math.log(
-        max(1e-300, 1.0 - grid.delta[i]))
+        max(1e-300, grid.ex_fraction(i)))
     return all(abs(math.log(b) - centre) <= 5.0 * sd + 1e-12
                for b in (t.lower, t.upper) if b is not None and b > 0)
 
@@ -497,24 +566,45 @@ def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
     ts = [t for t in thr if not t.never]
     if not ts:
         return head + ": not worth using at any node of the lattice at these inputs" + tail
-    return head + " " + _bound_text(ts, fmt) + tail
+    text = _bound_text(ts, fmt, once=True)
+    return head + (": " if text.startswith("used") else " ") + text + tail
 
 
-def _bound_text(ts, fmt) -> str:
-    ab = [t for t in ts if t.lower is not None]
-    be = [t for t in ts if t.upper is not None]
-    if not ab and not be:
-        return "at the first date allowed, at every project value"
+def _everywhere(year: float) -> str:
+    return "used today, at today's project value" if year == 0 else (
+        f"used at year {year:.3g}, at every project value")
+
+
+def _bound_text(ts, fmt, once: bool = False) -> str:
+    """The policy found, from the thresholds of the dates where the right is used (sorted by
+    date). A date without bounds is one where every node of the tree uses the right: stated as
+    such, with its date. ``once``: a one-shot right, whose rule ends at the first date where it
+    is used at every node (nothing is left to decide); for a repeatable move, early dates where
+    the tree spans few values lead the bounds."""
+    every = [t for t in ts if t.lower is None and t.upper is None]
+    bounded = [t for t in ts if t.lower is not None or t.upper is not None]
+    if not bounded or (once and every and every[0].year <= bounded[0].year):
+        return _everywhere(every[0].year)
+    lead = [t for t in every if t.year < bounded[0].year]
+    late = [t for t in every if t.year > bounded[0].year]
+    ab = [t for t in bounded if t.lower is not None]
+    be = [t for t in bounded if t.upper is not None]
     if ab and (len(ab) >= len(be)):
         first, last = ab[0], ab[-1]
         txt = f"once project value exceeds {fmt(first.lower)} (year {first.year:.3g})"
         if last is not first:
             txt += f", {fmt(last.lower)} by year {last.year:.3g}"
-        return txt
-    first, last = be[0], be[-1]
-    txt = f"if project value falls below {fmt(first.upper)} (year {first.year:.3g})"
-    if last is not first:
-        txt += f", {fmt(last.upper)} by year {last.year:.3g}"
+    else:
+        first, last = be[0], be[-1]
+        txt = f"if project value falls below {fmt(first.upper)} (year {first.year:.3g})"
+        if last is not first:
+            txt += f", {fmt(last.upper)} by year {last.year:.3g}"
+    if lead:
+        span = (f"at year {lead[0].year:.3g}" if len(lead) == 1 else
+                f"from year {lead[0].year:.3g} to {lead[-1].year:.3g}")
+        txt = f"{span} at every project value the tree reaches, then " + txt
+    if late:
+        txt += "; " + _everywhere(late[0].year)
     return txt
 
 
@@ -525,7 +615,10 @@ def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
     state = graph.states[s0]
     if not state.invested:
         if act:
-            return f"invest now ({graph.edges[act - 1].right})"
+            commit = graph.edges[act - 1]
+            then = pol.actions(commit.target, 0)[0] if 0 in pol.runs.get(commit.target, {}) else 0
+            also = f", and use '{graph.edges[then - 1].right}' at once" if then else ""
+            return f"invest now ({commit.right}){also}"
         return "wait: keep the right to invest, do not commit today"
     verdict = "invest" if full >= 0 else "do not invest: the expanded NPV is negative"
     if act:
@@ -602,5 +695,5 @@ def _fan(grid: Grid, steps):
         mean_rw[col] = float(pmf @ v)
         growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
         mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
-            1.0 - grid.delta[i])
+            grid.ex_fraction(i))
     return grid.times[steps], fan, mean_rw, mean_rn

@@ -25,6 +25,7 @@ from dataclasses import replace
 
 from . import __version__
 from .errors import ProjectError, RealoptError, ValuationError
+from .jsontext import _plain, to_json  # noqa: F401  (one serializer for every JSON result)
 
 PROG = "realopt"
 MEMORY_SHARE = 0.5          # refuse a run needing more than this share of the available memory
@@ -278,7 +279,7 @@ def _register_appraise(sub) -> None:
             between the rights, the expanded NPV, and the exercise rule of each right in plain
             words. Amounts are in the currency and unit of the file, valued today.
 
-            With --json, print instead one JSON object (the results contract of DESIGN.md:
+            With --json, print instead one JSON object (the results contract of docs/design.md:
             present_value, investment_pv, static_npv, expanded_npv, flexibility_value, rights[],
             lattice, ...)."""),
         epilog=textwrap.dedent("""\
@@ -329,36 +330,6 @@ def run_appraise(args) -> int:
     return 0
 
 
-def _plain(obj):
-    """JSON default: numpy scalars and arrays to Python numbers and lists."""
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    if isinstance(obj, (set, frozenset)):
-        return sorted(obj)
-    raise TypeError(f"{type(obj).__name__} is not JSON serialisable")
-
-
-def _finite(obj):
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_finite(v) for v in obj]
-    return obj
-
-
-def to_json(data) -> str:
-    """Strict JSON text (non-finite numbers, which JSON cannot hold, become null)."""
-    import json
-
-    try:
-        return json.dumps(data, indent=2, default=_plain, allow_nan=False)
-    except ValueError:
-        return json.dumps(_finite(json.loads(json.dumps(data, default=_plain))), indent=2,
-                          allow_nan=False)
-
-
 def headline(a) -> str:
     """The headline table of an Appraisal as text."""
     from . import CAUTION
@@ -378,7 +349,9 @@ def headline(a) -> str:
         return f"{label:<{w}}" + "".join(f"{c:>16}" for c in cols)
 
     out = [f"{p.name}", f"amounts in {money}, valued today", ""]
-    out.append(row("Present value of the operating project", "", num(a.present_value)))
+    se = getattr(a, "present_value_stderr", 0)   # simulated V0: its standard error beside it
+    out.append(row("Present value of the operating project", "",
+                   num(a.present_value) + (f" ± {se:,.2f}" if se else "")))
     out.append(row("Investment (present value)", "", num(-a.investment_pv)))
     out.append(row("Static NPV (commit now, no flexibility)", "", num(a.static_npv)))
     out.append("")
@@ -429,6 +402,8 @@ COMMANDS = (
     _register_check,
     _register_appraise,
     "realopt.outputs.command:register",
+    "realopt.sweep:register",
+    "realopt.portfolio:register",
 )
 
 
@@ -444,7 +419,9 @@ def build_parser() -> argparse.ArgumentParser:
               appraise  print the static NPV, the value of each right, the expanded NPV and
                         when to use each right
               report    write the decision-paper report (HTML, PDF, Markdown, JSON, CSV,
-                        figures) to a folder"""),
+                        figures) to a folder
+              sweep     appraise over a grid of --set values, in parallel on Dask
+              portfolio appraise several projects; choose what to commit within a budget"""),
         epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--version", action="version", version=f"{PROG} {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -485,7 +462,7 @@ def main(argv=None) -> int:
         return exc.code if isinstance(exc.code, int) else 2
     if getattr(args, "run", None) is None:
         parser.print_usage(sys.stderr)
-        _err(f"{PROG}: error: name a command (check, appraise, report); see {PROG} --help")
+        _err(f"{PROG}: error: name a command (check, appraise, report, sweep, portfolio); see {PROG} --help")
         return 2
     try:
         return args.run(args)

@@ -11,6 +11,15 @@ Drivers (real-world measure, yearly continuous parameters, t in years from today
 The cash flow of year t is ``cash_flow`` evaluated on the drivers' values at t, less
 ``tax_rate`` times its positive part; flows are paid at the integer years ``model.years``.
 
+Expected flows: exact when there is no tax and the formula is a polynomial in the stochastic drivers
+(:meth:`Formula.expand`; schedules and other deterministic parts go into the coefficients). The
+logs of the drivers at year t are jointly normal with means m_i(t) (above, from today) and
+covariances rho_ij vol_i vol_j (1 - e^{-(k_i + k_j) t}) / (k_i + k_j) (rho_ij vol_i vol_j t when
+k_i + k_j = 0; k = speed, 0 for gbm), so each monomial prod X_i^{e_i} has the expectation
+exp(e.m + e' Sigma e / 2) (lognormal moments). Otherwise (tax, min/max/abs, division by a driver)
+the expected flows are the means over the simulated paths and V0 carries a standard error: that of
+the mean of the paths' own present values, so the correlation of a path's flows across years counts.
+
 Volatility (Smith 2005; Brandao, Dyer & Hahn 2005): with V0 the present value of the expected
 flows at ``discount_rate`` and V1 = CF_1 + E[sum_{t>1} CF_t / G(t - 1) | year-one state] the value
 at year one (G the discount-rate growth), sigma = std(ln(V1 / V0)). The expectation is conditional
@@ -63,8 +72,12 @@ class DriverResult:
     ``cash_flows``: (year, expected cash flow) for each cash-flow year; ``present_value``: their PV
     at ``market.discount_rate`` (V0); ``volatility``: yearly sigma of ln(project value) and its
     standard error (None unless a simulation estimate was asked for); ``method``: how, in words.
-    ``present_value_stderr`` is 0 when the expected flows are analytic. ``year_one_mean`` is a
-    check: by iterated expectations E[V1] equals V0 grown one year at the discount rate.
+    ``present_value_stderr`` is 0 when the expected flows are exact, else the standard error of
+    the simulated V0 (paid at the dates); ``flow_covariance`` (None when exact) is the covariance
+    matrix of the simulated mean flows (the sample covariance of a path's flows across years over
+    the path count), from which :meth:`stderr_of` gives the standard error of any weighted sum of
+    them, e.g. V0 under another flow timing. ``year_one_mean`` is a check: by iterated
+    expectations E[V1] equals V0 grown one year at the discount rate.
     """
 
     cash_flows: tuple[tuple[float, float], ...]
@@ -77,6 +90,14 @@ class DriverResult:
     seed: int | None = None
     conditional: str = ""          # "analytic", "regression" or "" (no estimate)
     year_one_mean: float | None = None   # mean of V1 over the paths; E[V1] = V0 G(1) in theory
+    flow_covariance: tuple[tuple[float, ...], ...] | None = None
+
+    def stderr_of(self, weights) -> float:
+        """Standard error of sum_k weights[k] * (mean cash flow of year k): 0 when exact."""
+        if self.flow_covariance is None:
+            return 0.0
+        w = np.asarray(weights, dtype=float)
+        return math.sqrt(max(float(w @ np.asarray(self.flow_covariance) @ w), 0.0))
 
 
 # --- public API ---------------------------------------------------------------------------------
@@ -222,6 +243,9 @@ class _Plan:
         self.affine = self.tax == 0.0 and self.formula.is_affine(
             {x.name for x in self.stochastic})
         self.d = d
+        # polynomial in the stochastic drivers, coefficients per cash-flow year (None: not one)
+        self.poly = None if self.tax else self.formula.expand(
+            [x.name for x in self.stochastic], self.schedule_env(self.years))
 
     # log-moments of ln X_{s+tau} given ln X_s = y (arrays broadcast over tau)
     def log_mean(self, i, y, tau):
@@ -237,6 +261,33 @@ class _Plan:
         if x.process == "gbm" or x.speed == 0:
             return x.volatility ** 2 * tau
         return x.volatility ** 2 * -np.expm1(-2 * x.speed * tau) / (2 * x.speed)
+
+    def log_cov(self, tau) -> np.ndarray:
+        """(len(tau), d, d) covariance of the drivers' logs tau years after a known state:
+        rho_ij vol_i vol_j (1 - e^{-(k_i + k_j) tau}) / (k_i + k_j), or rho_ij vol_i vol_j tau."""
+        tau = np.atleast_1d(np.asarray(tau, dtype=float))[:, None, None]
+        ksum = (self.speed[:, None] + self.speed[None, :])[None]
+        h = np.where(ksum > 0, -np.expm1(-ksum * tau) / np.where(ksum > 0, ksum, 1.0), tau)
+        return self.corr[None] * np.outer(self.vol, self.vol)[None] * h
+
+    def exact_flows(self) -> np.ndarray:
+        """E[CF_t] for the cash-flow years from the polynomial (lognormal moments, see above)."""
+        years = self.years
+        m = np.stack([np.broadcast_to(self.log_mean(i, self.y0[i], years), years.shape)
+                      for i in range(self.d)])                        # (d, years)
+        cov = self.log_cov(years)                                     # (years, d, d)
+        total = np.zeros(len(years))
+        with np.errstate(all="ignore"):
+            for exps, coef in self.poly.items():                      # a loop over terms
+                e = np.array(exps, dtype=float)
+                total = total + coef * np.exp(e @ m + 0.5 * np.einsum("i,tij,j->t", e, cov, e))
+        bad = ~np.isfinite(total)
+        if bad.any():
+            raise ValuationError(
+                f"the cash-flow formula gives a non-finite value (division by zero, overflow or "
+                f"a power of a negative number) in its expected value in {int(bad.sum()):,} "
+                f"year(s); check divisions and powers in: {self.formula.text}")
+        return total
 
     def schedule_env(self, years) -> dict:
         return {n: np.asarray(d.schedule.at(years), dtype=float)
@@ -380,8 +431,10 @@ class _Progress:
             sys.stderr.flush()
 
 
-def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
-    """simulate_underlying; ``conditional="regression"`` forces the regression route (tests)."""
+def _run(model, estimate, market, *, conditional: str = "auto",
+         mean_route: str = "auto") -> DriverResult:
+    """simulate_underlying; ``conditional="regression"`` forces the regression route and
+    ``mean_route="simulation"`` simulated expected flows (tests)."""
     plan = _Plan(model)
     simulate = estimate is not None and estimate.method == "simulation"
     settings = estimate if simulate else DEFAULT
@@ -399,26 +452,35 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
     if not plan.uncertain:
         route = "analytic"   # nothing random: the flows are what the formula says
 
-    # 1. Expected cash flows and V0.
-    pv_stderr, fit = 0.0, None
-    if route == "analytic":
+    # 1. Expected cash flows and V0: exact where the formula allows, else simulated.
+    pv_stderr, fit, flow_cov = 0.0, None, None
+    exact = plan.poly is not None and mean_route == "auto"
+    if not plan.uncertain:
         env = plan.schedule_env(years)
         for i, x in enumerate(plan.stochastic):
             env[x.name] = np.exp(plan.log_mean(i, plan.y0[i], years) + plan.log_var(i, years) / 2)
         expected = np.broadcast_to(plan.cash_flow(env, "for the expected drivers"),
                                    years.shape).astype(float)
+        how = "expected cash flows exact (no uncertain driver)"
+    elif exact:
+        expected = plan.exact_flows()
+        how = "expected cash flows exact (formula a polynomial in the drivers; lognormal moments)"
+        if simulate and route == "regression":
+            _, _, fit = _simulate_paths(plan, paths, seed, later, d1, disc, need_fit=True,
+                                        exact=expected)
     else:
-        expected, pv_stderr, fit = _simulate_paths(plan, paths, seed, later, d1, disc,
-                                                   need_fit=simulate)
+        expected, cov, fit = _simulate_paths(plan, paths, seed, later, d1, disc,
+                                             need_fit=simulate)
+        pv_stderr = math.sqrt(max(float((1 / disc) @ cov @ (1 / disc)), 0.0))
+        flow_cov = tuple(tuple(float(c) for c in row) for row in cov)
+        how = f"expected cash flows from simulation, {paths} paths, seed {seed}"
     v0 = float(np.sum(expected / disc))
     flows = tuple((float(t), float(c)) for t, c in zip(years, expected))
     if not simulate:
-        if route == "analytic":
-            how = ("expected cash flows analytic (formula linear in the drivers)" if plan.uncertain
-                   else "expected cash flows exact (no uncertain driver)")
+        if flow_cov is None:
             return DriverResult(flows, v0, None, None, how, 0.0, 0, None, "")
-        return DriverResult(flows, v0, None, None, f"expected cash flows from simulation, "
-                            f"{paths} paths, seed {seed}", pv_stderr, paths, seed, "")
+        return DriverResult(flows, v0, None, None, how, pv_stderr, paths, seed, "",
+                            flow_covariance=flow_cov)
 
     # 2. Volatility from the year-one values.
     if not plan.uncertain:
@@ -488,7 +550,7 @@ def _run(model, estimate, market, *, conditional: str = "auto") -> DriverResult:
         err_how = "stderr: fourth-moment delta method plus fitting error"
     method = f"simulation, {paths} paths, seed {seed}, conditional expectation ({cond}); {err_how}"
     return DriverResult(flows, v0, sigma, stderr, method, pv_stderr, paths, seed, route,
-                        v1_sum / paths)
+                        v1_sum / paths, flow_cov)
 
 
 def _later_means(plan, y1, later) -> dict:
@@ -622,12 +684,17 @@ def _controls(plan, y1, xs_later, means, weights) -> np.ndarray:
     return np.stack(cols, axis=1)
 
 
-def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit):
-    """Pass over full paths: mean cash flow per year, PV standard error, regression fit.
+def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit, exact=None):
+    """Pass over full paths: mean cash flow per year, the covariance matrix of those means
+    (sample covariance of a path's flows across years, over the path count), regression fit.
 
     The regression of the discounted later flows on the year-one basis also takes control
     variates (driver noise after year one, zero mean given the year-one state): they leave the
-    conditional expectation unchanged and remove most of the noise from the fit.
+    conditional expectation unchanged and remove most of the noise from the fit. With ``exact``
+    expected flows, the intercept is moved so that the fitted conditional expectation averages,
+    over the year-one states drawn, to the exact expectation of the discounted later flows (a
+    known mean): then the mean of V1 is V0 G(1) for the exact V0, up to the sampling noise of the
+    year-one cash flow alone.
     """
     years = plan.years
     cols = {int(t): j for j, t in enumerate(years)}
@@ -639,8 +706,10 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit):
     q = sum(w.shape[1] for w in weights.values())
     rows = plan.chunk_rows(len(years) + (p + q) // 2)
     gens = [plan.year_draws(seed, t) for t in range(1, plan.horizon + 1)]
-    total = np.zeros(len(years))
-    pv = _Moments()
+    shift = None
+    total, dev_sum = np.zeros(len(years)), np.zeros(len(years))
+    gram_cf = np.zeros((len(years), len(years)))
+    phi_sum = np.zeros(p)
     gram, rhs, yy = np.zeros((p + q, p + q)), np.zeros(p + q), 0.0
     proxy_scale = 1.0
     if fit_it:
@@ -670,14 +739,19 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit):
             xs[i] = env[x.name] = np.exp(logs[i])
         del logs
         cf = np.broadcast_to(plan.cash_flow(env, "on a simulated path"), (c, len(years)))
+        if shift is None:
+            shift = cf.mean(axis=0)
         total += cf.sum(axis=0)
-        pv.add(np.sum(cf / disc, axis=1))
+        dev = cf - shift          # shifted sums for the covariance: no cancellation
+        dev_sum += dev.sum(axis=0)
+        gram_cf += np.einsum("ci,cj->ij", dev, dev)
         if fit_it:
             target = np.sum(cf[:, later_mask] / d1, axis=1)
             means = _later_means(plan, y1, later)
             xs_later = {i: xs[i][:, later_mask] for i in plan.uncertain}
-            design = np.hstack([_basis(plan, y1, _proxy(plan, means, later, d1), proxy_scale),
-                                _controls(plan, y1, xs_later, means, weights)])
+            phi = _basis(plan, y1, _proxy(plan, means, later, d1), proxy_scale)
+            phi_sum += phi.sum(axis=0)
+            design = np.hstack([phi, _controls(plan, y1, xs_later, means, weights)])
             # einsum, not BLAS: fixed summation order, and no thread spin under load
             gram += np.einsum("ci,cj->ij", design, design)
             rhs += np.einsum("ci,c->i", design, target)
@@ -686,19 +760,21 @@ def _simulate_paths(plan, paths, seed, later, d1, disc, need_fit):
         bar.update(done)
     bar.close()
     expected = total / paths
-    _, m2, _ = pv.stats()
-    pv_stderr = math.sqrt(m2 / (paths - 1))
+    mean_dev = dev_sum / paths
+    cov = (gram_cf / paths - np.outer(mean_dev, mean_dev)) * (paths / (paths - 1)) / paths
     fit = None
     if need_fit:
         if fit_it:
             coef, _, rank, _ = np.linalg.lstsq(gram, rhs, rcond=1e-12)
             rss = max(yy - float(coef @ rhs), 0.0)
             inv = np.linalg.pinv(gram, rcond=1e-12)
-            cov = rss / max(paths - rank, 1) * inv[:p, :p]
-            fit = _Fit(coef[:p], cov, q, proxy_scale)
+            coef = coef[:p].copy()
+            if exact is not None:   # intercept: the fit averages to the exact mean of the target
+                coef[0] += float(np.sum(exact[later_mask] / d1)) - float(phi_sum @ coef) / paths
+            fit = _Fit(coef, rss / max(paths - rank, 1) * inv[:p, :p], q, proxy_scale)
         else:
             fit = _Fit(np.zeros(p), np.zeros((p, p)), 0, proxy_scale)
-    return expected, pv_stderr, fit
+    return expected, cov, fit
 
 
 __all__ = ["DriverResult", "simulate_underlying", "history_volatility", "correlation_matrix",

@@ -115,22 +115,46 @@ class Formula:
         (0-d for a formula without names). Division by zero or overflow give inf/nan in the result
         without a warning: callers check ``np.isfinite``. Unknown names raise FormulaError.
         """
-        missing = [n for n in self._positions() if n[0] not in env]
-        if missing:
-            name, start, end = missing[0]
-            known = ", ".join(sorted(env)) or "none"
-            raise FormulaError(
-                f"cash-flow formula uses '{name}', which is not defined (defined: {known}); "
-                "add a driver of that name or correct the spelling", self.text, start, end)
+        self._check_defined(env)
         values = {n: np.asarray(env[n], dtype=float) for n in self.names}
         with np.errstate(all="ignore"):
             return np.asarray(_eval(self._tree, values), dtype=float)
+
+    def _check_defined(self, env, also=()) -> None:
+        missing = [n for n in self._positions() if n[0] not in env and n[0] not in also]
+        if missing:
+            name, start, end = missing[0]
+            known = ", ".join(sorted(set(env) | set(also))) or "none"
+            raise FormulaError(
+                f"cash-flow formula uses '{name}', which is not defined (defined: {known}); "
+                "add a driver of that name or correct the spelling", self.text, start, end)
 
     def is_affine(self, names) -> bool:
         """True when the formula is affine (degree <= 1) in ``names``: a sum of terms each linear
         in at most one of them, with coefficients that may depend on the other names. Then the
         expectation of the formula is the formula of the expectations of ``names``."""
         return _degree(self._tree, frozenset(names)) is not None
+
+    def expand(self, variables, env: Mapping[str, "np.ndarray | float"]):
+        """The formula as a polynomial in ``variables``, or None when it is not one.
+
+        Returns ``{exponents: coefficient}``: ``exponents`` a tuple of integers >= 0, one per name
+        in ``variables`` (in that order), and ``coefficient`` a float or an array (the parts of the
+        formula free of ``variables`` are evaluated on ``env``, so they may be any allowed
+        expression of the other names, e.g. schedules, and broadcast like :meth:`evaluate`).
+        The formula equals sum(coef * prod(v_i ** e_i)). It is a polynomial when ``variables``
+        enter only through + - *, division by an expression free of them, and powers with a
+        constant whole exponent from 0 to MAX_POWER; min/max/abs of a variable, or division by
+        one, give None. None also when the expansion would exceed MAX_TERMS terms.
+        """
+        index = {n: i for i, n in enumerate(variables)}
+        self._check_defined(env, index)
+        values = {n: np.asarray(env[n], dtype=float) for n in self.names if n not in index}
+        try:
+            with np.errstate(all="ignore"):
+                return _expand(self._tree, index, values)
+        except _NotPolynomial:
+            return None
 
     def _positions(self):
         out = []
@@ -343,3 +367,78 @@ def _degree(node, stochastic):
         return 0 if a == 0 and b == 0 else None  # **
     degs = [_degree(a, stochastic) for a in node[2]]
     return 0 if all(d == 0 for d in degs) else None
+
+
+MAX_POWER = 12      # largest whole exponent of a variable expanded by Formula.expand
+MAX_TERMS = 2000    # largest number of terms Formula.expand builds
+
+
+class _NotPolynomial(Exception):
+    pass
+
+
+def _uses(node, index) -> bool:
+    kind = node[0]
+    if kind == "num":
+        return False
+    if kind == "name":
+        return node[1] in index
+    if kind in ("neg", "pos"):
+        return _uses(node[1], index)
+    if kind == "bin":
+        return _uses(node[2], index) or _uses(node[3], index)
+    return any(_uses(a, index) for a in node[2])
+
+
+def _times(p, q):
+    out = {}
+    for ea, ca in p.items():
+        for eb, cb in q.items():
+            e = tuple(x + y for x, y in zip(ea, eb))
+            out[e] = out[e] + ca * cb if e in out else ca * cb
+    if len(out) > MAX_TERMS:
+        raise _NotPolynomial
+    return out
+
+
+def _expand(node, index, values):
+    """Polynomial {exponents: coefficient} of ``node`` in the names of ``index`` (see expand)."""
+    zero = (0,) * len(index)
+    if not _uses(node, index):
+        return {zero: _eval(node, values)}
+    kind = node[0]
+    if kind == "name":
+        e = [0] * len(index)
+        e[index[node[1]]] = 1
+        return {tuple(e): 1.0}
+    if kind == "pos":
+        return _expand(node[1], index, values)
+    if kind == "neg":
+        return {e: np.negative(c) for e, c in _expand(node[1], index, values).items()}
+    if kind != "bin":
+        raise _NotPolynomial            # min, max, abs of a variable
+    op, left, right = node[1], node[2], node[3]
+    if op in ("+", "-"):
+        out = dict(_expand(left, index, values))
+        sign = 1.0 if op == "+" else -1.0
+        for e, c in _expand(right, index, values).items():
+            out[e] = out[e] + sign * c if e in out else sign * c
+        return out
+    if op == "*":
+        return _times(_expand(left, index, values), _expand(right, index, values))
+    if op == "/":
+        if _uses(right, index):
+            raise _NotPolynomial        # division by a variable
+        den = np.asarray(_eval(right, values), dtype=float)
+        return {e: np.divide(c, den) for e, c in _expand(left, index, values).items()}
+    # ** with a variable in the base or the exponent
+    if _uses(right, index):
+        raise _NotPolynomial
+    power = np.unique(np.asarray(_eval(right, values), dtype=float))
+    if power.size != 1 or not (0 <= power[0] <= MAX_POWER) or power[0] != int(power[0]):
+        raise _NotPolynomial
+    base = _expand(left, index, values)
+    out = {zero: 1.0}
+    for _ in range(int(power[0])):
+        out = _times(out, base)
+    return out

@@ -8,6 +8,12 @@ V = V0 * C_i * u^j * d^(i-j), C_i the product of (1 - delta) over cash-flow date
 
 Backward induction holds one array per state and time slice (shape: states x nodes); the policy is
 kept as run-length codes per state and step (see ``Policy``), never a full tree of values.
+
+The project ends at its last cash-flow date (cash-flow forms): at that date the year's flow is paid
+first, then the decisions are taken, then the terminal value is paid to the state chosen (a sale
+there replaces the terminal value); no right can be used after it. Committing through the defer
+right and using another right at the same date is allowed (the commitment is taken first), so the
+project committed today can do everything the project committed without the defer right can.
 """
 from __future__ import annotations
 
@@ -44,6 +50,22 @@ class Grid:
     fixed_weight: np.ndarray     # (steps+1,) years of a state's fixed yearly flow paid at step i
     fixed_beyond: float          # value at the horizon of 1 a year of fixed flow after it
     warnings: tuple[str, ...] = ()
+    late: np.ndarray | None = None   # (steps+1,) part of delta paid after the decisions (the
+    #                                  terminal value at the last cash-flow date)
+    last_step: int | None = None     # step of the last cash-flow date (None: present_value form)
+
+    def late_share(self, i: int) -> float:
+        return float(self.late[i]) if self.late is not None else 0.0
+
+    def ex_fraction(self, i: int) -> float:
+        """Share of the cum-flow value left when the decisions at step i are taken."""
+        return 1.0 - float(self.delta[i]) + self.late_share(i)
+
+    @cached_property
+    def fixed_pv(self) -> float:
+        """Value today of 1 a year of fixed flow in the timing the lattice pays it (risk-free)."""
+        disc = self.discount ** np.arange(self.steps + 1)
+        return float(self.fixed_weight @ disc + self.fixed_beyond * disc[-1])
 
     @cached_property
     def times(self) -> np.ndarray:
@@ -63,8 +85,9 @@ class Grid:
         return math.exp(max(base, -_LOG_LIMIT)) * self._powers[:i + 1]
 
     def nodes_ex(self, i: int) -> np.ndarray:
-        """Project value at step i after that date's cash flow (the value decisions look at)."""
-        return self.nodes(i) * (1.0 - self.delta[i])
+        """Project value at step i after that date's cash flow (the value decisions look at; at
+        the last cash-flow date, the terminal value still to be paid)."""
+        return self.nodes(i) * self.ex_fraction(i)
 
     def memory_bytes(self, states: int) -> int:
         """Rough peak memory of one solve: a few slices per state plus the run-length policy."""
@@ -164,30 +187,41 @@ def build_grid(project: Project, res: ResolvedUnderlying) -> Grid:
     fixed_beyond = 0.0
     fixed_weight = np.zeros(steps + 1)
     yield_flow = 0.0
+    late = np.zeros(steps + 1)
+    last_step = None
+    if res.has_flows:
+        last_step = int(round(res.last_flow_year / dt))
     if res.has_flows and res.timing == "spread":
-        delta, fixed_weight, fixed_beyond = _spread_payouts(res, market, steps, dt, horizon)
+        delta, fixed_weight, fixed_beyond, late = _spread_payouts(res, market, steps, dt,
+                                                                  horizon)
     elif res.has_flows:
         keep = np.ones(steps + 1)
         starts = (res.period_start,) + res.flow_times[:-1]
-        for t, dl, t_prev in zip(res.flow_times, res.payout, starts):
+        n = len(res.flow_times)
+        for m, (t, dl, t_prev) in enumerate(zip(res.flow_times, res.payout, starts)):
             if t <= horizon + 1e-12:
                 k = int(round(t / dt))
+                if m == n - 1 and res.cash_flows[-1] > 0:      # the terminal value's share
+                    late[k] = keep[k] * res.terminal_value / res.cash_flows[-1]
                 keep[k] *= 1.0 - dl
                 fixed_weight[k] += t - t_prev
             else:
                 fixed_beyond += (t - t_prev) / float(market.risk_free_growth(t - horizon))
         delta = 1.0 - keep
     else:
+        # continuous payout: a fixed yearly flow accrues over every step (dt years of it,
+        # compounded to the step at the risk-free rate), to the horizon
         yield_flow = math.expm1(q * dt) if q else 0.0
-        for year in range(1, int(math.floor(horizon + 1e-9)) + 1):
-            fixed_weight[int(round(year / dt))] += 1.0
+        rf = intensity(market.risk_free_rate, market.compounding)
+        fixed_weight[1:] = math.expm1(rf * dt) / rf if rf else dt
     with np.errstate(divide="ignore"):
         logkeep = np.log(np.maximum(1.0 - delta, 0.0))
     log_carry = np.concatenate([[0.0], np.cumsum(logkeep)[:-1]])
     return Grid(steps=steps, step_years=dt, horizon=horizon, up=up, down=down, probability=p,
                 real_probability=p_real, discount=1.0 / g, log_v0=math.log(res.present_value),
                 log_carry=log_carry, delta=delta, yield_flow=yield_flow,
-                fixed_weight=fixed_weight, fixed_beyond=fixed_beyond, warnings=tuple(warnings))
+                fixed_weight=fixed_weight, fixed_beyond=fixed_beyond, warnings=tuple(warnings),
+                late=late, last_step=last_step)
 
 
 def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, horizon: float):
@@ -195,7 +229,8 @@ def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, hori
     (compounded to t_i at the discount intensity), so that value before the payment = payment +
     value after it, exactly; the terminal value is paid at the last date's step. Returns the
     payout fractions, the fixed-flow weights (years of fixed flow accrued per step, compounded
-    at the risk-free rate) and the value at the horizon of 1 a year of fixed flow after it."""
+    at the risk-free rate), the value at the horizon of 1 a year of fixed flow after it, and the
+    share of the payment at the last date that is the terminal value (paid after decisions)."""
     times = np.arange(steps + 1) * dt
     pieces = np.zeros(steps + 1)
     pieces[1:] = res.accrued(times[:-1], times[1:])
@@ -215,17 +250,21 @@ def _spread_payouts(res: ResolvedUnderlying, market, steps: int, dt: float, hori
             "terminal_value, or model the loss-making tail as a right.")
     delta = np.where(before > 0, pieces / np.where(before > 0, before, 1.0), 0.0)
     delta[0] = 0.0
+    late = np.zeros(steps + 1)
+    if 0 < tv_step <= steps and before[tv_step] > 0:
+        late[tv_step] = res.terminal_value / before[tv_step]
     rf = intensity(market.risk_free_rate, market.compounding)
     unit = [(res.period_start, res.last_flow_year, res.last_flow_year - res.period_start)]
     weight = np.zeros(steps + 1)                  # 1 a year of fixed flow, at the risk-free rate
     weight[1:] = stream_accrued(unit, rf, times[:-1], times[1:])
     beyond = float(stream_value_after(unit, rf, horizon)) if res.last_flow_year > horizon else 0.0
-    return delta, weight, beyond
+    return delta, weight, beyond, late
 
 
 def exercise_steps(grid: Grid, right) -> np.ndarray:
     """Boolean mask over steps where ``right`` may be exercised (windows inclusive; a defer
-    right may always commit today)."""
+    right may always commit today; nothing after the last cash-flow date, where the project
+    ends)."""
     mask = np.zeros(grid.steps + 1, dtype=bool)
     a, b = grid.step_of(right.window[0]), grid.step_of(right.window[1])
     if right.exercise == "american":
@@ -238,6 +277,8 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
                 mask[grid.step_of(t)] = True
     if right.kind == "defer":           # committing today is always one of the choices
         mask[0] = True
+    if grid.last_step is not None:
+        mask[grid.last_step + 1:] = False
     return mask
 
 
@@ -264,18 +305,22 @@ class Solution:
     policy: Policy | None
     grid: Grid
     graph: StateGraph
+    carry: np.ndarray | None = None   # (states,) carry-on value at t = 0, before today's choice
 
 
 def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
-    """Per step: list of (source row, target row or -1, amount at that step, edge id)."""
+    """Per step: (edges out of invested states, commit edges), each a list of (source row,
+    target row or -1, amount at that step, edge id). Commit edges are decided second, against
+    the values of the invested states after their own decisions at that step."""
     times = grid.times
-    per_step = [[] for _ in range(grid.steps + 1)]
+    per_step = [([], []) for _ in range(grid.steps + 1)]
     for e_id, e in enumerate(graph.edges):
         mask = exercise_steps(grid, rights_by_name[e.right])
         amounts = e.sign * np.broadcast_to(np.asarray(e.amount.at(times), float), times.shape)
         tgt = rows.get(e.target, -1)
+        phase = 0 if graph.states[e.source].invested else 1
         for i in np.flatnonzero(mask):
-            per_step[i].append((rows[e.source], tgt, float(amounts[i]), e_id))
+            per_step[i][phase].append((rows[e.source], tgt, float(amounts[i]), e_id))
     return per_step
 
 
@@ -304,9 +349,11 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     """Backward induction over every state at once.
 
     At step i (after that date's cash flow) a state's value is the best of carrying on, H_s, and
-    each edge allowed at i: H_target + money received (one decision per date). The value carried
-    back includes the state's flows at i: scale_s * delta_i * V + fixed_s. At the horizon a
-    state is worth scale_s * V_ex + fixed_s * PV(fixed flows beyond the horizon).
+    each edge allowed at i: H_target + money received (one decision per invested state and date;
+    a commitment first, then the invested state's decision). The value carried back includes the
+    state's flows at i: scale_s * delta_i * V + fixed_s; the terminal value (at the last
+    cash-flow date) is paid after the decisions. At the horizon a state is worth
+    scale_s * V_ex + fixed_s * PV(fixed flows beyond the horizon).
     ``record`` keeps the policy (every step, or step 0 only with ``today_only``).
     """
     rights_by_name = {r.name: r for r in graph.rights}
@@ -325,7 +372,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
     tmp = np.empty((S, N + 1))
     X = bufs[0]
-    np.multiply(scales, grid.nodes_ex(N)[None, :], out=X)
+    np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
     X += fixed * grid.fixed_beyond
     cur = 0
     one_state = S == 1
@@ -339,22 +386,36 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
             H += t
         else:
             H = X
-        edges = per_step[i]
-        if edges:
-            # candidates are computed from the carry-on values before any is overwritten
-            cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
-            if record and (i == 0 or not today_only):
+        late = grid.late_share(i)
+        if late:                                   # the terminal value, paid after decisions
+            H += scales * (grid.nodes(i) * late)[None, :]
+        if i == 0:
+            carry0 = H[:, 0].copy()                # each state's carry-on value today
+        invested_edges, commits = per_step[i]
+        if invested_edges or commits:
+            recording = record and (i == 0 or not today_only)
+            if recording:
                 carry = H.copy()
                 act = np.zeros(H.shape, dtype=np.int16)
-                for (src, _, _, e_id), cand in zip(edges, cands):
-                    better = cand > H[src]
-                    act[src][better] = e_id + 1
-                    np.copyto(H[src], cand, where=better)
-                _record(policy, i, edges, cands, act, carry, live)
-            else:
-                for (src, _, _, _), cand in zip(edges, cands):
-                    np.maximum(H[src], cand, out=H[src])
-        share = grid.delta[i] if grid.delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+                every, every_cand = [], []
+            for edges in (invested_edges, commits):
+                # candidates are computed from the carry-on values before any is overwritten
+                # (commitments: from the invested states' values after their decisions)
+                cands = [(H[tgt] + amount) if tgt >= 0 else amount for _, tgt, amount, _ in edges]
+                if recording:
+                    for (src, _, _, e_id), cand in zip(edges, cands):
+                        better = cand > H[src]
+                        act[src][better] = e_id + 1
+                        np.copyto(H[src], cand, where=better)
+                    every += edges
+                    every_cand += cands
+                else:
+                    for (src, _, _, _), cand in zip(edges, cands):
+                        np.maximum(H[src], cand, out=H[src])
+            if recording:
+                _record(policy, i, every, every_cand, act, carry, live)
+        share = grid.delta[i] - late if grid.delta[i] != 0.0 else (
+            grid.yield_flow if i > 0 else 0.0)
         if share:
             flow = grid.nodes(i)
             if one_state:
@@ -368,14 +429,18 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
-    return Solution(values=values, policy=policy, grid=grid, graph=graph)
+    carry = np.zeros(len(graph.states))
+    carry[live] = carry0
+    return Solution(values=values, policy=policy, grid=grid, graph=graph, carry=carry)
 
 
-def occupancy(sol: Solution, p: float):
+def occupancy(sol: Solution, p: float, absorb=()):
     """Forward pass under up-probability ``p`` with the recorded policy.
 
     Returns (state_prob, exercised): state_prob[i, k] = chance of being in state k after the
-    decisions at step i; exercised[i, e] = chance that edge e is taken at step i.
+    decisions at step i; exercised[i, e] = chance that edge e is taken at step i. Commitments
+    move first, then the invested states' decisions (as in :func:`solve`). Mass taking an edge
+    in ``absorb`` is counted and then dropped (first uses only: e.g. a switch's first move).
     """
     graph, grid, pol = sol.graph, sol.grid, sol.policy
     S, E, N = len(graph.states), len(graph.edges), grid.steps
@@ -386,7 +451,9 @@ def occupancy(sol: Solution, p: float):
     pi[graph.initial, 0] = 1.0
     absorbed = np.zeros(S)
     targets = [e.target for e in graph.edges]
-    gone = [graph.states[t].abandoned for t in targets]
+    gone = [graph.states[t].abandoned or k in absorb for k, t in enumerate(targets)]
+    phases = ([s for s in pol.runs if not graph.states[s].invested],
+              [s for s in pol.runs if graph.states[s].invested])
     for i in range(N + 1):
         if i > 0:
             nxt = bufs[i % 2][:, :i + 1]
@@ -394,23 +461,25 @@ def occupancy(sol: Solution, p: float):
             nxt[:, i] = 0.0
             nxt[:, 1:] += p * pi
             pi = nxt
-        moves = []
-        for s, steps in pol.runs.items():
-            if i not in steps:
-                continue
-            starts, codes = steps[i]
-            ends = np.append(starts[1:], i + 1)
-            for a, b, code in zip(starts.tolist(), ends.tolist(), codes.tolist()):
-                if code:
-                    moves.append((s, code - 1, a, b, pi[s, a:b].copy()))
-        for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
-            pi[s, a:b] -= mass
-            total = mass.sum()
-            if gone[e_id]:
-                absorbed[targets[e_id]] += total
-            else:
-                pi[targets[e_id], a:b] += mass
-            exercised[i, e_id] += total
+        for sources in phases:
+            moves = []
+            for s in sources:
+                steps = pol.runs[s]
+                if i not in steps:
+                    continue
+                starts, codes = steps[i]
+                ends = np.append(starts[1:], i + 1)
+                for a, b, code in zip(starts.tolist(), ends.tolist(), codes.tolist()):
+                    if code:
+                        moves.append((s, code - 1, a, b, pi[s, a:b].copy()))
+            for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
+                pi[s, a:b] -= mass
+                total = mass.sum()
+                if gone[e_id]:
+                    absorbed[targets[e_id]] += total
+                else:
+                    pi[targets[e_id], a:b] += mass
+                exercised[i, e_id] += total
         state_prob[i] = pi.sum(axis=1) + absorbed
     return state_prob, exercised
 

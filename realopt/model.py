@@ -39,13 +39,16 @@ class Schedule:
     """A money amount that may depend on the date t (years).
 
     Three forms: a constant; ``points`` (year, value) pairs, linear between them and flat beyond
-    the first and last; or ``start * (1 + growth)**t``.
+    the first and last; or ``start * (1 + growth)**t``. ``today`` (set by the valuation, never
+    by the loader) replaces the value at t = 0 only: a defer right commits today at the
+    investment's present value whatever its cost schedule says for later dates.
     """
 
     points: tuple[tuple[float, float], ...] = ((0.0, 0.0),)
     start: float | None = None
     growth: float = 0.0
     formula: str | None = None      # money as a formula over the drivers (valuation: simulation)
+    today: float | None = None
 
     @classmethod
     def constant(cls, value: float) -> "Schedule":
@@ -71,11 +74,14 @@ class Schedule:
             xs = [p[0] for p in self.points]
             ys = [p[1] for p in self.points]
             out = np.interp(t, xs, ys)
+        if self.today is not None:
+            out = np.where(np.abs(t) < 1e-12, self.today, out)
         return float(out) if out.ndim == 0 else out
 
     @property
     def is_constant(self) -> bool:
-        return self.start is None and len({v for _, v in self.points}) == 1
+        return self.start is None and self.today is None and len(
+            {v for _, v in self.points}) == 1
 
     @classmethod
     def from_formula(cls, text: str) -> "Schedule":
@@ -87,10 +93,14 @@ class Schedule:
         if self.formula is not None:
             return self.formula
         if self.start is not None:
-            return f"{fmt.format(self.start)} growing {self.growth:.1%} a year"
-        if self.is_constant:
-            return fmt.format(self.points[0][1])
-        return " to ".join(f"{fmt.format(v)} at year {y:g}" for y, v in self.points)
+            text = f"{fmt.format(self.start)} growing {self.growth:.1%} a year"
+        elif len({v for _, v in self.points}) == 1:
+            text = fmt.format(self.points[0][1])
+        else:
+            text = " to ".join(f"{fmt.format(v)} at year {y:g}" for y, v in self.points)
+        if self.today is not None:
+            text += f" ({fmt.format(self.today)} if committed today)"
+        return text
 
 
 @dataclass(frozen=True)
@@ -168,6 +178,9 @@ class VolatilityEstimate:
     file: str | None = None          # absolute path (resolved by the loader)
     column: str | None = None
     periods_per_year: float | None = None
+    # history: (sigma, standard error) already read from ``file`` (set by realopt.fanout before a
+    # project is sent to Dask workers, which need no access to the file); None = read the file
+    resolved: tuple[float, float] | None = None
 
 
 @dataclass(frozen=True)
@@ -335,6 +348,9 @@ class Project:
     warnings: tuple[str, ...] = ()
     valuation: str = "lattice"                 # lattice | simulation
     simulation: SimulationSpec | None = None   # with valuation: simulation
+    # the raw tree the loader validated (overrides applied) and its folder, so that moved copies
+    # (realopt.outputs.sensitivity) go through the loader again; None when built in Python
+    origin: tuple | None = field(default=None, compare=False, repr=False)
 
     @property
     def horizon(self) -> float:

@@ -19,12 +19,13 @@ compounded as ``market.compounding`` says, money in the project's currency and u
 """
 from __future__ import annotations
 
+import copy
 import difflib
 import importlib
 import keyword
 import math
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping
 
@@ -1661,9 +1662,11 @@ class _Builder:
                 if abs(c0 - ipv) > 1e-9 * max(1.0, abs(ipv)):
                     self.warn(("rights", Index(i), "cost"),
                               f"{r.name}: the cost of committing at year 0 is {c0:,.4g} but "
-                              f"investment.cost is worth {ipv:,.4g} today, so the flexibility is "
-                              "not measured against the same commitment as the static NPV; leave "
-                              "out the right's cost to use the investment plan, or make them agree")
+                              f"investment.cost is worth {ipv:,.4g} today; committing today "
+                              f"through '{r.name}' costs the investment's present value (the "
+                              "same commitment as the static NPV) and this cost applies at its "
+                              "later exercise dates; leave out the right's cost to use the "
+                              "investment plan throughout, or make them agree")
         # windows past the last cash-flow year: warned by the valuation (realopt.appraisal)
         if lattice.explicit and underlying.cash_flows:
             for y, _ in underlying.cash_flows:
@@ -1694,8 +1697,10 @@ _FORM_HINTS = {
 
 
 def build_project(tree: Tree, base_dir) -> model.Project:
-    """Validate a raw :class:`Tree` into a Project (ProjectError lists every problem)."""
-    return _Builder(tree, Path(base_dir)).build()
+    """Validate a raw :class:`Tree` into a Project (ProjectError lists every problem); the
+    Project keeps a copy of the raw tree as ``origin`` (data, folder) for moved copies."""
+    origin = (copy.deepcopy(tree.data), str(Path(base_dir).resolve()))
+    return replace(_Builder(tree, Path(base_dir)).build(), origin=origin)
 
 
 def load_project(path, overrides: Mapping[str, Any] | None = None, *,

@@ -1,4 +1,4 @@
-"""Loader part for ``valuation: simulation`` (the keys of DESIGN.md "Valuation on the drivers").
+"""Loader part for ``valuation: simulation`` (docs/file-format.md, "valuation: simulation").
 
 Called from :class:`realopt.project._Builder` at a few points; every check records a located
 problem through the builder (``b.bad``, ``b.missing``, ``b.warn``), as the rest of the loader does.

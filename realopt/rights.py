@@ -5,13 +5,17 @@ been used, the current mode of each switch right, or that it was abandoned (abso
 carries ``scale`` (multiplier on the base project's future cash flows) and ``fixed`` (yearly flow
 in that state, + = inflow). Each right contributes edges (source, target, money on exercise).
 
-Usage rules (documented in DESIGN.md and the README):
+Usage rules (documented in docs/design.md, section 3, and docs/file-format.md):
 * defer is the only edge out of "not yet invested"; every other right needs the project invested;
 * expand/contract are used at most once; switch edges may be taken any number of times;
 * abandon pays salvage and ends the project, from every invested state;
 * ``requires: [A]``: the right is available only once A has been used (defer: invested; a switch:
   while it is in a mode other than its start mode); ``excludes: [B]``: the right is unavailable
-  once B has been used and B is unavailable once this right has been used (symmetric).
+  once B has been used and B is unavailable once this right has been used (symmetric). A
+  requirement on the defer right always holds: every other right needs the project invested, and
+  without the defer right the project is committed today;
+* the base project (no right used) has every switch in its start mode, in every subset of rights:
+  a switch left out of a subset is *held* in its start mode (it scales the states, no edges).
 """
 from __future__ import annotations
 
@@ -70,31 +74,57 @@ class StateGraph:
 
 
 def prepared_rights(project) -> tuple[Right, ...]:
-    """The project's rights with a defer right's default cost filled in: the investment outlay
-    plan shifted to the exercise date is worth its present value at that date (risk-free)."""
+    """The project's rights with a defer right's cost made explicit: by default the investment
+    outlay plan shifted to the exercise date, worth its present value at that date (risk-free).
+    Committing today through the defer right always costs the investment's present value (the
+    commitment of the static NPV); a cost schedule given in the file applies at later dates."""
+    ipv = project.investment.present_value(project.market)
     out = []
     for r in project.rights:
-        if isinstance(r, Defer) and r.cost is None:
-            r = replace(r, cost=Schedule.constant(project.investment.present_value(project.market)))
+        if isinstance(r, Defer):
+            if r.cost is None:
+                r = replace(r, cost=Schedule.constant(ipv))
+            elif abs(r.cost.at(0.0) - ipv) > 1e-12 * max(1.0, abs(ipv)):
+                r = replace(r, cost=replace(r.cost, today=ipv))
         out.append(r)
     return tuple(out)
 
 
+def _live_requires(r, by_name) -> tuple[str, ...]:
+    """``r.requires`` less the defer rights (a requirement on the defer right always holds)."""
+    return tuple(q for q in r.requires if not isinstance(by_name.get(q), Defer))
+
+
 def usable_subset(rights, names) -> tuple[Right, ...]:
-    """The rights named in ``names`` whose ``requires`` are (transitively) inside the subset."""
-    keep = {r.name: r for r in rights if r.name in names}
+    """The rights named in ``names`` whose ``requires`` are (transitively) inside the subset. A
+    requirement on the defer right is met without it: the project is then committed today (and
+    an exclusion with the defer right is then in force)."""
+    by_name = {r.name: r for r in rights}
+    # a right excluded with the defer right can never be used: the project is committed (the
+    # defer right "used") from the start, with the defer right or without it (committed today)
+    defers = {r.name for r in rights if isinstance(r, Defer)}
+    never = {r.name for r in rights if not isinstance(r, Defer) and set(r.excludes) & defers}
+    never |= {x for r in rights if isinstance(r, Defer) for x in r.excludes}
+    keep = {r.name: r for r in rights if r.name in names and r.name not in never}
     changed = True
     while changed:
         changed = False
         for name, r in list(keep.items()):
-            if any(q not in keep for q in r.requires):
+            if any(q not in keep for q in _live_requires(r, by_name)):
                 del keep[name]
                 changed = True
-    return tuple(r for r in rights if r.name in keep)
+    out = []
+    for r in rights:
+        if r.name in keep:
+            if any(q not in keep for q in r.requires):      # a defer right left out: met today
+                r = replace(r, requires=tuple(q for q in r.requires if q in keep))
+            out.append(r)
+    return tuple(out)
 
 
 def requirement_closure(rights, name) -> frozenset:
-    """``name`` plus every right it requires, directly or indirectly."""
+    """``name`` plus every right it requires, directly or indirectly (a defer right only where
+    it is ``name`` itself: a requirement on it holds without it)."""
     by_name = {r.name: r for r in rights}
     out, todo = set(), [name]
     while todo:
@@ -102,12 +132,43 @@ def requirement_closure(rights, name) -> frozenset:
         if n in out or n not in by_name:
             continue
         out.add(n)
-        todo.extend(by_name[n].requires)
+        todo.extend(_live_requires(by_name[n], by_name))
     return frozenset(out)
 
 
-def _scale_fixed(rights, used, modes):
+def held_switches(rights, subset) -> tuple[Switch, ...]:
+    """The switches of ``rights`` left out of ``subset``: held in their start modes."""
+    names = {r.name for r in subset}
+    return tuple(r for r in rights if isinstance(r, Switch) and r.name not in names)
+
+
+def base_description(rights, what: str = "the cash flows as given") -> str:
+    """One line on the base project every subset of rights values: ``what``, with each switch in
+    its start mode where that mode is not the plain project (scale 1, no fixed flow)."""
+    parts = []
+    for r in rights:
+        if isinstance(r, Switch):
+            m = r.mode(r.start)
+            if m.scale != 1.0 or m.fixed != 0.0:
+                bits = ([f"scale {m.scale:g}"] if m.scale != 1.0 else []) + (
+                    [f"fixed {m.fixed:+g} a year"] if m.fixed != 0.0 else [])
+                parts.append(f"'{r.name}' in its start mode '{r.start}' ({', '.join(bits)})")
+    text = f"Base project: {what}"
+    return text + (", with " + " and ".join(parts) if parts else "")
+
+
+def base_scale_fixed(rights) -> tuple[float, float]:
+    """(scale, fixed yearly flow) of the base project: every switch in its start mode."""
+    return _scale_fixed(rights, frozenset(), tuple(r.start for r in rights
+                                                   if isinstance(r, Switch)))
+
+
+def _scale_fixed(rights, used, modes, held=()):
     scale, fixed = 1.0, 0.0
+    for sw in held:
+        mode = sw.mode(sw.start)
+        scale *= mode.scale
+        fixed += mode.fixed
     for r in rights:
         if isinstance(r, Expand) and r.name in used:
             scale *= 1.0 + r.scale
@@ -131,8 +192,9 @@ def _label(rights, invested, abandoned, used, modes):
     return "operating" if not parts else "operating, " + ", ".join(parts)
 
 
-def build_state_graph(rights: tuple[Right, ...]) -> StateGraph:
-    """Compile ``rights`` into the state graph by search from the initial state; validates it."""
+def build_state_graph(rights: tuple[Right, ...], held: tuple[Switch, ...] = ()) -> StateGraph:
+    """Compile ``rights`` into the state graph by search from the initial state; validates it.
+    ``held``: switches outside ``rights`` that stay in their start modes (see held_switches)."""
     switches = [r for r in rights if isinstance(r, Switch)]
     sw_index = {r.name: k for k, r in enumerate(switches)}
     defer = next((r for r in rights if isinstance(r, Defer)), None)
@@ -175,7 +237,7 @@ def build_state_graph(rights: tuple[Right, ...]) -> StateGraph:
             for r in rights:
                 if isinstance(r, Defer):
                     continue
-                if not all(used_in(q, key) for q in r.requires):
+                if not all(used_in(q, key) for q in _live_requires(r, by_name)):
                     continue
                 if any(used_in(x, key) for x in excluded_by.get(r.name, ())):
                     continue
@@ -206,7 +268,7 @@ def build_state_graph(rights: tuple[Right, ...]) -> StateGraph:
     for key in keys:
         invested, abandoned, used, modes = key
         scale, fixed = (0.0, 0.0) if (abandoned or not invested) else _scale_fixed(
-            rights, used, modes)
+            rights, used, modes, held)
         states.append(State(invested, abandoned, used, modes, scale, fixed,
                             _label(rights, invested, abandoned, used, modes)))
 
@@ -247,19 +309,56 @@ def unusable_rights(sg: StateGraph) -> list[str]:
     return [r.name for r in sg.rights if r.name not in seen]
 
 
-def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: float) -> list[str]:
-    """Warnings about how the rights meet the forecast (shown by ``check`` and ``appraise``)."""
+def _open_at(r: Right, t: float) -> bool:
+    """Whether the file's exercise dates of ``r`` include the date t (years)."""
+    a, b = r.window
+    if r.exercise == "european":
+        return abs(b - t) < 1e-9
+    if r.exercise == "bermudan":
+        return any(abs(d - t) < 1e-9 for d in r.dates if a - 1e-12 <= d <= b + 1e-12)
+    return a - 1e-9 <= t <= b + 1e-9
+
+
+def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: float, *,
+                       terminal_value: float | None = None) -> list[str]:
+    """Warnings about how the rights meet the forecast (shown by ``check`` and ``appraise``);
+    each names the right it concerns. These bear on the headline numbers.
+
+    The project ends at its last cash-flow date L: no right can be used after L; at L the rights
+    are decided after that year's flow and before the terminal value, so a sale there replaces
+    the terminal value (or, for a contraction, its share of it)."""
+    dead = unusable_rights(sg)
     out = [f"Right '{name}' can never be used: its requires/excludes rule out every state; it "
-           "adds nothing." for name in unusable_rights(sg)]
+           "adds nothing." for name in dead]
     if last_flow_year is None:
         return out
-    if horizon > last_flow_year + 1e-9:
-        out.append(f"Some windows run past the last cash-flow year ({last_flow_year:g}); the "
-                   "project is worth nothing after it.")
+    last = last_flow_year
     for r in sg.rights:
-        if r.kind == "abandon" and r.window[1] >= last_flow_year - 1e-9:
-            out.append(f"'{r.name}' can be used at or after the last cash-flow year "
-                       f"({last_flow_year:g}), when the operating project is worth nothing more: "
-                       "its salvage there is received on top of the terminal value. End the "
-                       "window earlier unless that is intended.")
+        if r.name in dead:
+            continue
+        if r.window[1] > last + 1e-9:
+            never = r.window[0] > last + 1e-9 or (
+                r.exercise == "european") or (r.exercise == "bermudan" and not any(
+                    d <= last + 1e-9 for d in r.dates))
+            out.append(f"'{r.name}': its window runs to year {r.window[1]:g}, past the last "
+                       f"cash-flow year ({last:g}), where the project ends; "
+                       + (f"'{r.name}' can never be used." if never else
+                          f"'{r.name}' is not used after year {last:g}.")
+                       + " End the window by the last cash-flow year, or extend the cash flows.")
+        if r.kind in ("abandon", "contract") and _open_at(r, last):
+            what = "salvage" if r.kind == "abandon" else "savings"
+            if terminal_value is not None and terminal_value == 0:
+                out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
+                           f"nothing is left of the project (no terminal value): its {what} "
+                           "there are collected for giving up nothing. End the window before "
+                           f"year {last:g} unless the {what} are truly available then.")
+            else:
+                tv = " (if any)" if terminal_value is None else f" ({terminal_value:,.4g})"
+                share = "replaces the terminal value" if r.kind == "abandon" else (
+                    f"replaces its share ({r.scale:.0%}) of the terminal value")
+                out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
+                           f"only the terminal value{tv} is left: decided before the terminal "
+                           f"value is paid, its {what} there {share}. Check that the terminal "
+                           f"value and the {what} at year {last:g} describe the same end of the "
+                           "project.")
     return out

@@ -42,6 +42,7 @@ class ResolvedUnderlying:
     period_start: float = 0.0           # start of the first flow's accrual period (years)
     terminal_value: float = 0.0
     intensity: float = 0.0              # continuous discount intensity of discount_rate
+    present_value_stderr: float | None = None   # simulated V0's standard error; None: exact
 
     @property
     def has_flows(self) -> bool:
@@ -144,7 +145,7 @@ def payout_schedule(flows, terminal_value: float, market: Market):
 @lru_cache(maxsize=64)
 def _resolve(underlying: Underlying, market: Market) -> ResolvedUnderlying:
     vol, stderr, method = underlying.volatility, None, "given in the project file"
-    flows = underlying.cash_flows
+    flows, sim = underlying.cash_flows, None
     est = underlying.volatility_estimate
     if underlying.drivers is not None:
         from . import drivers
@@ -156,7 +157,8 @@ def _resolve(underlying: Underlying, market: Market) -> ResolvedUnderlying:
     if est is not None and est.method == "history":
         from . import drivers
 
-        vol, stderr = drivers.history_volatility(est.file, est.column, est.periods_per_year)
+        vol, stderr = est.resolved or drivers.history_volatility(est.file, est.column,
+                                                                 est.periods_per_year)
         method = (f"history: annualised standard deviation of log returns of '{est.column}' "
                   f"in {est.file} ({est.periods_per_year:g} periods a year)")
     if underlying.present_value is not None and not flows:
@@ -181,6 +183,10 @@ def _resolve(underlying: Underlying, market: Market) -> ResolvedUnderlying:
             raise ValuationError(f"The expected cash flows are worth {v0:,.4g} today; the lattice "
                                  "of project value needs a positive value.")
         res = replace(res, present_value=v0, payout=())
+    if sim is not None and sim.flow_covariance is not None:   # V0 is linear in the mean flows
+        res = replace(res, present_value_stderr=sim.stderr_of(
+            [float(stream_value_after([(a, b, 1.0)], res.intensity, 0.0)) for a, b, _ in
+             res.periods()] if res.timing == "spread" else 1 / market.discount_growth(times)))
     return res
 
 

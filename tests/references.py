@@ -48,7 +48,7 @@ def quantlib_binomial(kind, s, k, r, q, sigma, t, steps, american=True, pin_p=No
 
     QuantLib's CRR branch probability is 1/2 + (r - q - sigma^2/2) sqrt(dt) / (2 sigma); with
     ``pin_p`` it is handed the payout yield q' = r - sigma^2/2 - (2p - 1) sigma / sqrt(dt) that makes
-    it equal to ours (DESIGN.md), so both trees are the same tree."""
+    it equal to ours (docs/design.md, section 4), so both trees are the same tree."""
     import QuantLib as ql
 
     today = ql.Date(15, 1, 2026)

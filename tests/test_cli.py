@@ -1,6 +1,6 @@
 """The command line: exit codes, located messages for the malformed corpus, demo projects, JSON.
 
-Contract under test: DESIGN.md ("Results contract", "Project file") and issue 3 (exit codes 0 ok,
+Contract under test: docs/design.md ("Results contract") and docs/file-format.md and issue 3 (exit codes 0 ok,
 1 invalid project or failed valuation, 2 usage; no traceback ever reaches the user).
 """
 from __future__ import annotations

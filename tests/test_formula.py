@@ -32,7 +32,7 @@ def no_hang():
 # --- accepted formulas --------------------------------------------------------------------------
 
 def test_design_example_evaluates_elementwise():
-    # DESIGN.md's example formula; reference: the same arithmetic written with numpy.
+    # the cash_flow example of docs/file-format.md; reference: the same arithmetic in numpy.
     f = parse("(price - unit_cost) * volume / 1000 - 4.5")
     assert f.names == frozenset({"price", "unit_cost", "volume"})
     price = np.array([[50.0, 60.0], [40.0, 70.0]])

@@ -1,6 +1,6 @@
 """The project loader: what it builds, where it points, what it warns about.
 
-Contract under test: DESIGN.md "Project file" (keys, schedules, conventions) and issue 3.
+Contract under test: docs/file-format.md (keys, schedules, conventions) and issue 3.
 Outside references are named beside each check.
 """
 from __future__ import annotations
@@ -63,7 +63,7 @@ def test_schedule_forms():
           - {name: c, type: contract, scale: 0.5, savings: 4, window: [1, 2]}
         """)
     a, b, c = p.rights
-    assert a.cost.at(2.0) == pytest.approx(10 * 1.05 ** 2)        # DESIGN: X * (1 + g)^t
+    assert a.cost.at(2.0) == pytest.approx(10 * 1.05 ** 2)        # docs/file-format.md: X * (1 + g)^t
     assert b.salvage.at(1.0) == pytest.approx(20.0)               # linear between points
     assert b.salvage.at(5.0) == pytest.approx(10.0)               # flat beyond the last
     assert c.savings.is_constant and c.savings.at(1.5) == 4.0
@@ -322,7 +322,7 @@ def test_warnings(minimal_project_text):
     text = minimal_project_text.replace("rights:\n", "rights:\n  - {name: Wait, type: defer, "
                                         "window: [0, 2], cost: 75}\n")
     p = loads(text)
-    assert len(p.warnings) == 1 and "not measured against the same commitment" in p.warnings[0]
+    assert len(p.warnings) == 1 and "costs the investment's present value" in p.warnings[0]
     assert "75" in p.warnings[0] and "70" in p.warnings[0]
     assert loads(text.replace("cost: 75}", "cost: 70}")).warnings == ()
     p = loads("""

@@ -148,3 +148,38 @@ def test_one_shot_right_value_never_falls_with_volatility(kind, s1, ds, q, r, sp
                     lattice=LatticeSpec(steps_per_year=spy))
         return expanded_npv(p)
     assert flex(s1 + ds) >= flex(s1) - 1e-9
+
+
+@st.composite
+def projects_free_start(draw):
+    """Like ``projects`` but with a switch whose start mode (and the other mode) is drawn freely:
+    scale in [0, 1.5], fixed in [-3, 3] a year; the switch is always among the rights."""
+    p = draw(projects(max_rights=3))
+    horizon = max(2, int(max(r.window[1] for r in p.rights)))
+    a = draw(st.integers(0, horizon))
+    b = draw(st.integers(a, horizon))
+
+    def mode(name):
+        return Mode(name, draw(st.floats(0.0, 1.5)), draw(st.floats(-3.0, 3.0)))
+    sw = Switch(name="free switch", window=(float(a), float(b)),
+                exercise=draw(st.sampled_from(["american", "european"])),
+                modes=(mode("start"), mode("other")), start="start",
+                costs=(("start", "other", Schedule.constant(draw(st.floats(0, 3)))),
+                       ("other", "start", Schedule.constant(draw(st.floats(0, 5))))))
+    others = tuple(r for r in p.rights if r.name != "switch")
+    return replace(p, rights=others + (sw,))
+
+
+@SETTINGS
+@given(projects_free_start())
+def test_every_share_nonnegative_with_free_start_modes(project):
+    # Common practice: adding a right never lowers the value, so every marginal contribution is
+    # >= 0 and with it every standalone value and every Shapley share (a weighted average of
+    # marginal contributions, Shapley 1953), whatever the switch's start mode.
+    a = realopt.appraise(project)
+    tol = 1e-7 * max(1.0, abs(a.present_value), abs(a.investment_pv))
+    for r in a.rights:
+        assert r.standalone_value >= -tol, (r.name, r.standalone_value)
+        assert r.shapley_value >= -tol, (r.name, r.shapley_value)
+    assert a.static_npv == __import__("pytest").approx(a.present_value - a.investment_pv,
+                                                       abs=1e-9 * max(1.0, abs(a.present_value)))

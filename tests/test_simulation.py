@@ -268,7 +268,7 @@ def test_a_right_never_exercised_adds_exactly_zero():
 
 def test_mean_reverting_forward_curve_is_matched_exactly_in_expectation():
     # Schwartz (1997) one-factor model: theta(t) chosen so that E*[X_t] = F(t); log-linear
-    # between the curve's points (DESIGN.md). 200,000 antithetic paths; 4 standard errors.
+    # between the curve's points (docs/design.md, section 10). 200,000 antithetic paths; 4 standard errors.
     p = loads("""
 project: {name: mr}
 valuation: simulation
@@ -434,7 +434,7 @@ rights:
 
 def test_spread_timing_present_value_is_exact():
     # spread: each step pays the cash-flow rate at its start times the step's length inside the
-    # cash-flow years (DESIGN.md); E*[X_t] = X0 e^{r t} (gbm), discounted at r (continuous)
+    # cash-flow years (docs/design.md, section 10); E*[X_t] = X0 e^{r t} (gbm), discounted at r (continuous)
     text = """
 project: {name: spread}
 valuation: simulation
@@ -498,3 +498,17 @@ def test_sale_threshold_in_the_driver_follows_the_lattice_boundary():
         assert abs(t.upper - ref[round(t.year, 6)]) < 1.0, (t.year, t.upper, ref[round(t.year, 6)])
         checked += 1
     assert checked >= 8
+
+
+def test_a_right_with_no_exercise_date_adds_exactly_zero():
+    # the project ends at its last cash-flow date (year 10): a right whose window opens after it
+    # has no exercise date, so every subset with it follows the same paths and decisions as the
+    # subset without it (common random numbers): its share is exactly 0 (common practice)
+    p = loads(PROPORTIONAL.format(valuation="valuation: simulation\nsimulation: {paths: 4000}",
+                                  vol="")
+              + "  - {name: Late sale, type: abandon, salvage: 500, window: [11, 12]}\n")
+    a = realopt.appraise(p)
+    late = a.right("Late sale")
+    assert late.shapley_value == 0.0 and late.standalone_value == 0.0
+    assert late.shapley_standard_error == 0.0
+    assert any("Late sale" in w for w in a.warnings)

@@ -64,6 +64,8 @@ def register(sub) -> None:
                    help="sensitivity moves: volatility (absolute, default 0.05), rates "
                         "(absolute, default 0.01), relative (costs, cash flows, salvage and "
                         "scale inputs, default 0.20)")
+    p.add_argument("--sweep", metavar="SWEEP_DIR",
+                   help="also include the figure of a finished `realopt sweep` folder")
     add_project_options(p)
     p.set_defaults(run=run_report)
 
@@ -81,9 +83,15 @@ def run_report(args) -> int:
             f"{args.file}: realopt report does not draw simulation results yet (valuation: "
             "simulation); use `realopt appraise FILE` for the table and rules, or `realopt "
             "appraise FILE --json` for every figure with its standard error. Nothing was written.")
+    extra = []
+    if getattr(args, "sweep", None):
+        from .sweep_figures import sweep_chart
+
+        extra.append(sweep_chart(args.sweep))
     result = appraise_from_args(args, extra_solves=report_solves)
     out = Path(args.output) if args.output else Path(f"{Path(args.file).stem}-report")
-    write_report(result, out, source=args.file, moves=args.moves or DEFAULT_MOVES)
+    write_report(result, out, source=args.file, moves=args.moves or DEFAULT_MOVES,
+                 extra_charts=extra)
     _out(f"{args.file}: report written to {out}/ (report.html, report.pdf, report.md, "
          "results.json, tables/, figures/)")
     return 0

@@ -3,7 +3,7 @@
 DIR receives ``report.html`` (self-contained: figures embedded as base64 PNG, no network fetch,
 print CSS that fits A4 and Letter), ``report.pdf`` (the same content as A4 pages, matplotlib's
 PDF backend), ``report.md`` (for pasting; figures linked from ``figures/``), ``results.json``
-(the DESIGN.md results contract, ``Appraisal.to_dict()``), ``tables/*.csv`` (and
+(the results contract of docs/design.md, ``Appraisal.to_dict()``), ``tables/*.csv`` (and
 ``tables.xlsx`` when openpyxl is installed), ``figures/*.png`` at print resolution, and
 ``.realopt-report`` (a manifest that marks the folder as a report realopt may replace).
 
@@ -55,6 +55,7 @@ class Built:
     charts: list                                       # those known so far, in reading order
     pdf_pages: list = field(default_factory=list)      # page headings, in order
     complete: bool = False                              # charts include the sensitivity ones
+    extra: list = field(default_factory=list)          # added figures (e.g. a sweep's)
 
     def sens(self):
         """The sensitivity analysis (waited for on first use), and with it the full list of
@@ -69,7 +70,7 @@ class Built:
         return s
 
     def chart(self, slug: str):
-        return next(c for c in self.charts if c.slug == slug)
+        return next(c for c in self.charts + self.extra if c.slug == slug)
 
     def png(self, slug: str) -> bytes:
         return self.drawer.get(slug)[0]
@@ -106,11 +107,12 @@ def _check_target(out_dir: Path, source) -> None:
 
 
 def write_report(appraisal, out_dir, *, source=None, moves: Moves = DEFAULT_MOVES,
-                 dpi: int = 300, xlsx: bool | None = None) -> Path:
+                 dpi: int = 300, xlsx: bool | None = None, extra_charts=()) -> Path:
     """Write the report of ``appraisal`` into ``out_dir`` (see the module doc); returns DIR.
 
     ``source``: the project file (refused as, or inside, the output). ``moves``: the tornado's
     input moves. ``xlsx``: write tables.xlsx (default: when openpyxl is installed).
+    ``extra_charts``: further figures (e.g. ``sweep_figures.sweep_chart``), in their own section.
     Raises :class:`ReportError` (nothing written, previous report intact) on failure.
     """
     out_dir = Path(out_dir)
@@ -128,7 +130,7 @@ def write_report(appraisal, out_dir, *, source=None, moves: Moves = DEFAULT_MOVE
         umask = os.umask(0)
         os.umask(umask)
         tmp.chmod(0o777 & ~umask)                  # mkdtemp makes it private; a report is not
-        _write_all(appraisal, moves, tmp, dpi, xlsx, source)
+        _write_all(appraisal, moves, tmp, dpi, xlsx, source, extra_charts)
         _swap(tmp, final)
         tmp = None
     except ReportError:
@@ -174,16 +176,18 @@ def _swap(tmp: Path, final: Path) -> None:
 
 
 # ------------------------------------------------------------------------ writing
-def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source) -> None:
+def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> None:
     from . import figures
 
     f = Fmt(a.project)
     with _Drawer(a, moves, dpi) as drawer:
-        b = Built(appraisal=a, drawer=drawer, fmt=f, charts=list(drawer.base))
+        b = Built(appraisal=a, drawer=drawer, fmt=f, charts=list(drawer.base),
+                  extra=list(extra_charts))
+        drawer.charts.update({c.slug: c for c in b.extra})      # drawn here, on demand
         write_pdf(b, tmp / "report.pdf")           # takes each figure as it is drawn
         s = b.sens()
         (tmp / "figures").mkdir()
-        for chart in b.charts:
+        for chart in b.charts + b.extra:
             (tmp / "figures" / f"{chart.slug}.png").write_bytes(b.png(chart.slug))
     tables = csv_tables(a, s, f)
     (tmp / "tables").mkdir()
@@ -208,7 +212,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source) -> None:
     (tmp / "report.md").write_text(render_markdown(b), encoding="utf-8")
     manifest = {"realopt": __version__, "project": a.project.name,
                 "source": None if source is None else str(source),
-                "figures": [c.slug + ".png" for c in b.charts],
+                "figures": [c.slug + ".png" for c in b.charts + b.extra],
                 "tables": [t + ".csv" for t in tables], "xlsx": bool(xlsx),
                 "pdf_pages": b.pdf_pages}
     (tmp / MARKER).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
@@ -528,6 +532,8 @@ def _sections(b: Built):
         ("p", CONVENTIONS)]))
     out.append(("Warnings", [("list", list(a.warnings))] if a.warnings
                 else [("p", "None.")]))
+    if b.extra:
+        out.append(("Sweep of inputs", [("figure", c.slug) for c in b.extra]))
     out.append(("Caution", [("caution", CAUTION), ("note", _files_text())]))
     yield from out
 

@@ -2,20 +2,33 @@
 today, and convergence of the expanded NPV over the lattice's steps per year.
 
 Every number here comes from the valuation engine (:func:`realopt.appraisal.quick_appraisal` and
-:func:`realopt.appraisal.expanded_npv`) run on a moved copy of the project
-(``dataclasses.replace``); the base values are the Appraisal's own, never recomputed.
+:func:`realopt.appraisal.expanded_npv`) run on a moved copy of the project; the base values are
+the Appraisal's own, never recomputed.
 
-Moves (defaults in :data:`DEFAULT_MOVES`, stated in the figure and the tables):
+Moved copies go through the same path as the command line's ``--set``: dotted key paths set on
+the raw tree the loader read (``Project.origin``, overrides already applied), then the loader
+validates the whole tree again (:func:`realopt.project.build_project`). A project built in Python
+(no ``origin``, or one changed after loading) is first written back as a raw tree by
+:func:`project_tree`. Either way the copy with no move must equal the project field for field,
+else no sensitivity is computed and a note says why. See docs/design.md, "Sensitivities".
 
-* volatility: +- ``volatility`` (absolute, yearly sigma of ln V; floored at 1%);
-* risk-free rate and discount rate: +- ``rates`` (absolute, yearly, in the project's compounding);
-* money and scale inputs: x (1 +- ``relative``): the investment outlays, the expected cash flows
-  (or the present value), each right's cost, savings, salvage, switching costs and fixed mode
-  flows, and each expand/contract scale (a contraction is capped below 100%).
+Moves (defaults in :data:`DEFAULT_MOVES`, stated in the figure and the tables), each with the keys
+it sets:
 
-For a project whose cash flows come from drivers, the volatility and cash-flow moves keep the
-simulated expected cash flows as they are (no new simulation, so no simulation noise in the
-difference); the rate moves re-run the simulation with the file's own paths and seed.
+* volatility: +- ``volatility`` (absolute, yearly sigma of ln V; floored at 1%):
+  ``underlying.volatility``. When the volatility is estimated by simulation from the drivers, the
+  moved copy states the drivers' expected cash flows of that simulation as
+  ``underlying.cash_flows`` (every other underlying key kept: terminal_value, flow_timing) and
+  the moved volatility as a number, so the move is not blurred by a new simulation;
+* risk-free rate and discount rate: +- ``rates`` (absolute, yearly, in the project's
+  compounding): ``market.risk_free_rate``, ``market.discount_rate`` (a driver project is then
+  simulated again with its own paths and seed);
+* money and scale inputs: x (1 +- ``relative``): ``investment.cost``; the expected cash flows
+  (``underlying.cash_flows`` and ``terminal_value``; for drivers the formula
+  ``underlying.cash_flow`` times the factor, and ``terminal_value``) or ``present_value``; each
+  right's cost, savings, salvage, switching costs (``rights.<i>.costs``) and the modes' fixed
+  flows (``rights.<i>.modes``); each expand/contract scale and switch mode scale (a contraction is
+  capped below 100%).
 
 Break-evens: the volatility and the investment cost (every outlay, and any defer right's own
 cost, moved in proportion; stated as the present value of the outlays, the Appraisal's
@@ -25,11 +38,15 @@ the searched span); None where the decision does not change inside the searched 
 """
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass, field, replace
-from typing import Callable
+from typing import Any, Callable
 
 from ..errors import RealoptError
-from ..model import Abandon, Contract, Defer, Expand, Project, Schedule, Switch, Underlying
+from ..model import (Abandon, Contract, Defer, Driver, Expand, Project, Right, Schedule, Switch,
+                     Underlying)
+from ..project import DRIVER_FORM_KEYS, Tree, apply_overrides, build_project
+from ..underlying import resolve
 
 VOL_RANGE = (0.02, 1.50)          # searched for the volatility break-even (yearly sigma)
 COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even (x today's cost)
@@ -117,6 +134,173 @@ class Sensitivity:
 
 
 # --------------------------------------------------------------------------------------------
+# The project as a raw tree (for projects built in Python) and moved copies through the loader
+
+def _schedule_raw(s: Schedule):
+    """A Schedule as the file writes it: a number, {year: amount} or {start, growth}."""
+    if s.start is not None:
+        return {"start": s.start, "growth": s.growth}
+    if len(s.points) == 1 and s.points[0][0] == 0.0:
+        return s.points[0][1]
+    return {y: v for y, v in s.points}
+
+
+def _years_raw(pairs) -> dict:
+    return {y: v for y, v in pairs}
+
+
+def _driver_raw(d: Driver):
+    if d.process == "schedule":
+        return {"schedule": _schedule_raw(d.schedule)}
+    if d.process == "gbm":
+        return {"process": "gbm", "start": d.start, "drift": d.drift, "volatility": d.volatility}
+    return {"process": d.process, "start": d.start, "long_run": d.long_run, "speed": d.speed,
+            "volatility": d.volatility}
+
+
+def _underlying_raw(u: Underlying) -> dict:
+    out: dict[str, Any] = {}
+    if u.drivers is not None:
+        m = u.drivers
+        out.update(years=list(m.years), drivers={d.name: _driver_raw(d) for d in m.drivers},
+                   correlation=[[a, b, r] for a, b, r in m.correlation], cash_flow=m.cash_flow,
+                   tax_rate=m.tax_rate)
+    elif u.cash_flows:
+        out["cash_flows"] = _years_raw(u.cash_flows)
+    else:
+        out.update(present_value=u.present_value, payout_yield=u.payout_yield)
+    if "present_value" not in out:
+        out.update(terminal_value=u.terminal_value, flow_timing=u.flow_timing)
+    e = u.volatility_estimate
+    if e is not None and e.method == "simulation":
+        out["volatility"] = {"estimate": "simulation", "paths": e.paths, "seed": e.seed}
+    elif e is not None:
+        out["volatility"] = {"estimate": e.method, "file": e.file, "column": e.column,
+                             "periods_per_year": e.periods_per_year}
+    elif u.volatility is not None:
+        out["volatility"] = u.volatility
+    return out
+
+
+def _right_raw(r: Right) -> dict:
+    out: dict[str, Any] = {"name": r.name, "type": r.kind, "window": list(r.window),
+                           "exercise": r.exercise}
+    if r.exercise == "bermudan":
+        out["dates"] = list(r.dates)
+    if r.requires:
+        out["requires"] = list(r.requires)
+    if r.excludes:
+        out["excludes"] = list(r.excludes)
+    if isinstance(r, Defer):
+        if r.cost is not None:
+            out["cost"] = _schedule_raw(r.cost)
+    elif isinstance(r, Expand):
+        out.update(scale=r.scale, cost=_schedule_raw(r.cost))
+    elif isinstance(r, Contract):
+        out.update(scale=r.scale, savings=_schedule_raw(r.savings))
+    elif isinstance(r, Abandon):
+        out["salvage"] = _schedule_raw(r.salvage)
+    elif isinstance(r, Switch):
+        out.update(modes=_modes_raw(r.modes), start=r.start, costs=_costs_raw(r.costs))
+    return out
+
+
+def _modes_raw(modes, k_fixed: float = 1.0, scaled: str | None = None, k_scale: float = 1.0):
+    return {m.name: {"scale": m.scale * k_scale if m.name == scaled else m.scale,
+                     "fixed": m.fixed * k_fixed} for m in modes}
+
+
+def _costs_raw(costs, k: float = 1.0):
+    return {f"{a}->{b}": _schedule_raw(_scaled(c, k)) for a, b, c in costs}
+
+
+def project_tree(p: Project) -> dict:
+    """``p`` written back as the raw tree of a project file (plain dicts, lists, numbers and
+    text, values exactly as held): the loader turns it into a Project equal to ``p`` whenever
+    ``p`` is one the loader could have built. Used for projects built in Python."""
+    lat = p.lattice
+    out = {
+        "project": {"name": p.name, **({"currency": p.currency} if p.currency else {}),
+                    **({"unit": p.unit} if p.unit else {})},
+        "market": {"risk_free_rate": p.market.risk_free_rate,
+                   "discount_rate": p.market.discount_rate,
+                   "compounding": p.market.compounding},
+        "underlying": _underlying_raw(p.underlying),
+        "investment": {"cost": _years_raw(p.investment.outlays)},
+        "lattice": ({"up": lat.up, "down": lat.down, "step_years": lat.step_years}
+                    if lat.explicit else {"steps_per_year": lat.steps_per_year}),
+        "rights": [_right_raw(r) for r in p.rights],
+    }
+    return out
+
+
+def _same(q: Project, p: Project) -> bool:
+    return replace(q, source=p.source, warnings=p.warnings) == p
+
+
+class Copier:
+    """Moved copies of one project: ``copier(overrides)`` sets each dotted key path of
+    ``overrides`` (as ``--set`` does) on a fresh copy of the raw tree and validates it with the
+    loader. ``route`` says which raw tree: "file" (``Project.origin``) or "values"
+    (:func:`project_tree`); ``problem`` is set (and ``route`` None) when neither rebuilds the
+    project exactly."""
+
+    def __init__(self, project: Project):
+        self.project = project
+        self.route: str | None = None
+        self.problem: str | None = None
+        self._frozen: dict | None = None
+        tries = []
+        if project.origin is not None:
+            tries.append(("file", project.origin[0], project.origin[1]))
+        tries.append(("values", None, "."))
+        for route, data, folder in tries:
+            if data is None:
+                try:
+                    data = project_tree(project)
+                except (AttributeError, TypeError, ValueError) as err:
+                    self.problem = f"its values cannot be written as a project file ({err})"
+                    continue
+            self.data, self.folder = data, folder
+            try:
+                rebuilt = self(())
+            except RealoptError as err:
+                self.problem = str(err).splitlines()[-1].strip(" -")
+                continue
+            if _same(rebuilt, project):
+                self.route, self.problem = route, None
+                return
+            self.problem = ("the copy rebuilt from its inputs differs from the project (changed "
+                            "after loading, or holding values a project file cannot state)")
+
+    def __call__(self, overrides) -> Project:
+        """The project with ``overrides`` (mapping or pairs of dotted key -> raw value)."""
+        items = dict(overrides)
+        tree = Tree(copy.deepcopy(self.data), file=self.project.source or "<project>")
+        if items:
+            apply_overrides(tree, items, {k: f"sensitivity move {k}" for k in items})
+        return build_project(tree, self.folder)
+
+    def volatility(self, sigma: float) -> dict:
+        """Overrides setting the volatility the lattice uses to ``sigma`` (see module doc)."""
+        u = self.project.underlying
+        if u.drivers is None or u.volatility_estimate is None:
+            return {"underlying.volatility": sigma}
+        if self._frozen is None:
+            if u.terminal_value == 0.0:       # the appraisal's own flows (nothing added to them)
+                res = resolve(self.project)
+                flows = tuple(zip(res.flow_times, res.cash_flows))
+            else:
+                from ..drivers import simulate_underlying
+
+                flows = simulate_underlying(u.drivers, u.volatility_estimate,
+                                            self.project.market).cash_flows
+            raw = self.data.get("underlying") or {}
+            keep = {k: v for k, v in raw.items() if k not in DRIVER_FORM_KEYS + ("volatility",)}
+            self._frozen = {**keep, "cash_flows": _years_raw(flows)}
+        return {"underlying": {**copy.deepcopy(self._frozen), "volatility": sigma}}
+
+
 def _scaled(s: Schedule | None, k: float) -> Schedule | None:
     if s is None:
         return None
@@ -125,86 +309,125 @@ def _scaled(s: Schedule | None, k: float) -> Schedule | None:
     return replace(s, points=tuple((y, v * k) for y, v in s.points))
 
 
-def _replace_right(p: Project, name: str, **changes) -> Project:
-    return replace(p, rights=tuple(replace(r, **changes) if r.name == name else r
-                                   for r in p.rights))
-
-
-def _frozen_flows(p: Project, k: float = 1.0, sigma: float | None = None) -> Project:
-    """A driver-based project as the cash-flow form the lattice sees: the same expected cash
-    flows (times ``k``) and the same volatility (or ``sigma``), without a new simulation, so a
-    move of one input is not blurred by simulation noise."""
-    from ..underlying import resolve
-
-    res = resolve(p)
-    u = Underlying(cash_flows=tuple((t, c * k) for t, c in zip(res.flow_times, res.cash_flows)),
-                   volatility=res.volatility if sigma is None else sigma)
-    return replace(p, underlying=u)
-
-
-def _with_volatility(p: Project, sigma: float) -> Project:
-    u = p.underlying
-    if u.drivers is not None:
-        return _frozen_flows(p, sigma=sigma)
-    return replace(p, underlying=replace(u, volatility=sigma, volatility_estimate=None))
+def _investment(p: Project, k: float) -> dict:
+    return {"investment.cost": {y: a * k for y, a in p.investment.outlays}}
 
 
 def _money_inputs(p: Project):
-    """(label, builder(k) -> Project) for each money input; k multiplies it."""
-    out: list[tuple[str, Callable[[float], Project]]] = []
+    """(label, overrides(k)) for each money input; k multiplies it."""
+    out: list[tuple[str, Callable[[float], dict]]] = []
     u = p.underlying
-    out.append(("Investment cost", lambda k: replace(p, investment=replace(
-        p.investment, outlays=tuple((y, a * k) for y, a in p.investment.outlays)))))
-    if u.cash_flows:
-        out.append(("Expected cash flows", lambda k: replace(p, underlying=replace(
-            u, cash_flows=tuple((y, c * k) for y, c in u.cash_flows),
-            terminal_value=u.terminal_value * k))))
-    elif u.drivers is not None:
-        out.append(("Expected cash flows", lambda k: _frozen_flows(p, k)))
+    out.append(("Investment cost", lambda k: _investment(p, k)))
+    if u.drivers is not None:
+        out.append(("Expected cash flows", lambda k: {
+            "underlying.cash_flow": f"({u.drivers.cash_flow}) * {k!r}",
+            "underlying.terminal_value": u.terminal_value * k}))
+    elif u.cash_flows:
+        out.append(("Expected cash flows", lambda k: {
+            "underlying.cash_flows": {y: c * k for y, c in u.cash_flows},
+            "underlying.terminal_value": u.terminal_value * k}))
     elif u.present_value is not None:
-        out.append(("Present value of the project", lambda k: replace(p, underlying=replace(
-            u, present_value=u.present_value * k))))
-    for r in p.rights:
-        n = r.name
+        out.append(("Present value of the project", lambda k: {
+            "underlying.present_value": u.present_value * k}))
+    for i, r in enumerate(p.rights):
+        n, at = r.name, f"rights.{i}"
         if isinstance(r, Defer) and r.cost is not None:
-            out.append((f"{n}: cost", lambda k, r=r: _replace_right(p, r.name,
-                                                                    cost=_scaled(r.cost, k))))
+            out.append((f"{n}: cost", lambda k, r=r, at=at: {
+                f"{at}.cost": _schedule_raw(_scaled(r.cost, k))}))
         elif isinstance(r, Expand):
-            out.append((f"{n}: cost", lambda k, r=r: _replace_right(p, r.name,
-                                                                    cost=_scaled(r.cost, k))))
+            out.append((f"{n}: cost", lambda k, r=r, at=at: {
+                f"{at}.cost": _schedule_raw(_scaled(r.cost, k))}))
         elif isinstance(r, Contract):
-            out.append((f"{n}: savings", lambda k, r=r: _replace_right(
-                p, r.name, savings=_scaled(r.savings, k))))
+            out.append((f"{n}: savings", lambda k, r=r, at=at: {
+                f"{at}.savings": _schedule_raw(_scaled(r.savings, k))}))
         elif isinstance(r, Abandon):
-            out.append((f"{n}: salvage", lambda k, r=r: _replace_right(
-                p, r.name, salvage=_scaled(r.salvage, k))))
+            out.append((f"{n}: salvage", lambda k, r=r, at=at: {
+                f"{at}.salvage": _schedule_raw(_scaled(r.salvage, k))}))
         elif isinstance(r, Switch):
-            out.append((f"{n}: switching costs", lambda k, r=r: _replace_right(
-                p, r.name, costs=tuple((a, b, _scaled(c, k)) for a, b, c in r.costs))))
+            out.append((f"{n}: switching costs", lambda k, r=r, at=at: {
+                f"{at}.costs": _costs_raw(r.costs, k)}))
             if any(m.fixed for m in r.modes):
-                out.append((f"{n}: fixed flows of the modes", lambda k, r=r: _replace_right(
-                    p, r.name, modes=tuple(replace(m, fixed=m.fixed * k) for m in r.modes))))
+                out.append((f"{n}: fixed flows of the modes", lambda k, r=r, at=at: {
+                    f"{at}.modes": _modes_raw(r.modes, k_fixed=k)}))
     return out
 
 
 def _scale_inputs(p: Project):
+    """(label, base scale, cap, overrides(k)) for each scale input; k multiplies it."""
     out = []
-    for r in p.rights:
+    for i, r in enumerate(p.rights):
+        at = f"rights.{i}"
         if isinstance(r, Expand):
             out.append((f"{r.name}: scale", r.scale, None,
-                        lambda k, r=r: _replace_right(p, r.name, scale=r.scale * k)))
+                        lambda k, r=r, at=at: {f"{at}.scale": r.scale * k}))
         elif isinstance(r, Contract):
             out.append((f"{r.name}: scale", r.scale, CONTRACT_CAP,
-                        lambda k, r=r: _replace_right(p, r.name,
-                                                      scale=min(CONTRACT_CAP, r.scale * k))))
+                        lambda k, r=r, at=at: {f"{at}.scale": min(CONTRACT_CAP, r.scale * k)}))
         elif isinstance(r, Switch):
             for m in r.modes:
                 if m.name != r.start and m.scale:
                     out.append((f"{r.name}: scale of mode '{m.name}'", m.scale, None,
-                                lambda k, r=r, m=m: _replace_right(p, r.name, modes=tuple(
-                                    replace(x, scale=x.scale * k) if x.name == m.name else x
-                                    for x in r.modes))))
+                                lambda k, r=r, m=m, at=at: {f"{at}.modes": _modes_raw(
+                                    r.modes, scaled=m.name, k_scale=k)}))
     return out
+
+
+def _cost_overrides(p: Project, k: float) -> dict:
+    """Every outlay and any defer right's own cost times k (the cost break-even's move)."""
+    out = _investment(p, k)
+    for i, r in enumerate(p.rights):
+        if isinstance(r, Defer) and r.cost is not None:
+            out[f"rights.{i}.cost"] = _schedule_raw(_scaled(r.cost, k))
+    return out
+
+
+@dataclass(frozen=True)
+class Case:
+    """One input of the tornado: its label, the two settings as text, and the overrides (dotted
+    key -> raw value) of the low and high copies."""
+
+    input: str
+    low_setting: str
+    high_setting: str
+    low: dict
+    high: dict
+
+
+def cases(appraisal, moves: Moves = DEFAULT_MOVES, copier: Copier | None = None):
+    """The tornado's inputs with their overrides, and notes on inputs that are not moved."""
+    p = appraisal.project
+    copier = copier or Copier(p)
+    out: list[Case] = []
+    notes = []
+    if p.lattice.explicit:
+        notes.append("Volatility is not moved: the lattice uses explicit up/down factors.")
+    elif appraisal.volatility is not None:
+        s = appraisal.volatility
+        lo, hi = max(0.01, s - moves.volatility), s + moves.volatility
+        out.append(Case("Volatility", _pct(lo), _pct(hi), copier.volatility(lo),
+                        copier.volatility(hi)))
+    for key, label in (("risk_free_rate", "Risk-free rate"), ("discount_rate", "Discount rate")):
+        if key == "discount_rate" and p.underlying.present_value is not None \
+                and not p.underlying.cash_flows and p.underlying.drivers is None:
+            notes.append("Discount rate is not moved: the project value is given as a present "
+                         "value, so the discount rate does not enter the valuation.")
+            continue
+        base = getattr(p.market, key)
+        lo, hi = base - moves.rates, base + moves.rates
+        out.append(Case(label, _pct(lo), _pct(hi), {f"market.{key}": lo},
+                        {f"market.{key}": hi}))
+    k_lo, k_hi = 1.0 - moves.relative, 1.0 + moves.relative
+    for label, build in _money_inputs(p):
+        out.append(Case(label, f"x{k_lo:g}", f"x{k_hi:g}", build(k_lo), build(k_hi)))
+    for label, base, cap, build in _scale_inputs(p):
+        hi = base * k_hi if cap is None else min(cap, base * k_hi)
+        out.append(Case(label, _pct(base * k_lo), _pct(hi), build(k_lo), build(k_hi)))
+    return out, notes
+
+
+def _not_rebuilt(copier: Copier) -> str:
+    return (f"No sensitivity is computed: moved copies of the project are made by the project "
+            f"loader, and {copier.problem}.")
 
 
 def _pct(x: float) -> str:
@@ -217,45 +440,26 @@ def _quick(project: Project, decision: bool = True):
     return quick_appraisal(project, decision=decision)
 
 
-def tornado(appraisal, moves: Moves = DEFAULT_MOVES) -> tuple[list[TornadoRow], list[str]]:
+def tornado(appraisal, moves: Moves = DEFAULT_MOVES,
+            copier: Copier | None = None) -> tuple[list[TornadoRow], list[str]]:
     """Rows of the tornado, largest swing of expanded NPV first; notes on skipped inputs."""
-    p = appraisal.project
-    cases: list[tuple[str, str, str, Project, Project]] = []
-    notes = []
-    m = p.market
-    if p.lattice.explicit:
-        notes.append("Volatility is not moved: the lattice uses explicit up/down factors.")
-    elif appraisal.volatility is not None:
-        s = appraisal.volatility
-        lo, hi = max(0.01, s - moves.volatility), s + moves.volatility
-        cases.append(("Volatility", _pct(lo), _pct(hi), _with_volatility(p, lo),
-                      _with_volatility(p, hi)))
-    for key, label in (("risk_free_rate", "Risk-free rate"), ("discount_rate", "Discount rate")):
-        if key == "discount_rate" and p.underlying.present_value is not None \
-                and not p.underlying.cash_flows and p.underlying.drivers is None:
-            notes.append("Discount rate is not moved: the project value is given as a present "
-                         "value, so the discount rate does not enter the valuation.")
-            continue
-        base = getattr(m, key)
-        lo, hi = base - moves.rates, base + moves.rates
-        cases.append((label, _pct(lo), _pct(hi),
-                      replace(p, market=replace(m, **{key: lo})),
-                      replace(p, market=replace(m, **{key: hi}))))
-    k_lo, k_hi = 1.0 - moves.relative, 1.0 + moves.relative
-    for label, build in _money_inputs(p):
-        cases.append((label, f"x{k_lo:g}", f"x{k_hi:g}", build(k_lo), build(k_hi)))
-    for label, base, cap, build in _scale_inputs(p):
-        hi = base * k_hi if cap is None else min(cap, base * k_hi)
-        cases.append((label, _pct(base * k_lo), _pct(hi), build(k_lo), build(k_hi)))
+    copier = copier or Copier(appraisal.project)
+    if copier.route is None:
+        return [], [_not_rebuilt(copier)]
+    try:
+        todo, notes = cases(appraisal, moves, copier)
+    except RealoptError as err:           # the drivers' simulation of the volatility move
+        return [], [f"No sensitivity is computed: {err}"]
     rows = []
-    for label, lo_txt, hi_txt, p_lo, p_hi in cases:
+    for c in todo:
         try:
-            s_lo, e_lo, _ = _quick(p_lo, decision=False)
-            s_hi, e_hi, _ = _quick(p_hi, decision=False)
+            s_lo, e_lo, _ = _quick(copier(c.low), decision=False)
+            s_hi, e_hi, _ = _quick(copier(c.high), decision=False)
         except RealoptError as err:
-            notes.append(f"{label} is not moved: {err}")
+            notes.append(f"{c.input} is not moved: {err}")
             continue
-        rows.append(TornadoRow(label, lo_txt, hi_txt, e_lo, e_hi, e_lo - s_lo, e_hi - s_hi))
+        rows.append(TornadoRow(c.input, c.low_setting, c.high_setting, e_lo, e_hi, e_lo - s_lo,
+                               e_hi - s_hi))
     rows.sort(key=lambda r: -r.swing)
     return rows, notes
 
@@ -288,37 +492,31 @@ def _search(decide, today: float, lo: float, hi: float, base: str):
     return below, d_below, above, d_above
 
 
-def breakevens(appraisal) -> list[BreakEven]:
+def breakevens(appraisal, copier: Copier | None = None) -> list[BreakEven]:
     """Volatility and investment cost at which the decision today changes (see module doc)."""
     p = appraisal.project
     base = appraisal.decision_today
     out = []
+    copier = copier or Copier(p)
+    if copier.route is None:
+        return out
 
-    def decide_with(build):
+    def decide_with(overrides):
         def decide(x):
             try:
-                return _quick(build(x))[2]
+                return _quick(copier(overrides(x)))[2]
             except RealoptError:
                 return None
         return decide
 
     if not p.lattice.explicit and appraisal.volatility is not None:
         s = appraisal.volatility
-        b, db, a, da = _search(decide_with(lambda x: _with_volatility(p, x)), s, *VOL_RANGE,
-                               base)
+        b, db, a, da = _search(decide_with(copier.volatility), s, *VOL_RANGE, base)
         out.append(BreakEven("Volatility", s, b, db, a, da, VOL_RANGE, "sigma"))
-
-    def cost_project(k):
-        q = replace(p, investment=replace(
-            p.investment, outlays=tuple((y, c * k) for y, c in p.investment.outlays)))
-        for r in p.rights:
-            if isinstance(r, Defer) and r.cost is not None:
-                q = _replace_right(q, r.name, cost=_scaled(r.cost, k))
-        return q
 
     today = appraisal.investment_pv            # every outlay moves by k, so its PV by k
     if today > 0:
-        b, db, a, da = _search(decide_with(cost_project), 1.0, *COST_RANGE, base)
+        b, db, a, da = _search(decide_with(lambda k: _cost_overrides(p, k)), 1.0, *COST_RANGE, base)
         out.append(BreakEven("Investment cost", today, None if b is None else b * today, db,
                              None if a is None else a * today, da,
                              (COST_RANGE[0] * today, COST_RANGE[1] * today), "money"))
@@ -340,13 +538,16 @@ def report_solves(project: Project) -> float:
     return solves
 
 
-def convergence(appraisal) -> Convergence | None:
+def convergence(appraisal, copier: Copier | None = None) -> Convergence | None:
     """Expanded NPV over steps per year (x1/4 .. x16 of the chosen grid, capped in total
     steps); None for explicit up/down trees, whose step is fixed by the file."""
     from ..appraisal import expanded_npv
 
     p = appraisal.project
     if p.lattice.explicit:
+        return None
+    copier = copier or Copier(p)
+    if copier.route is None:
         return None
     chosen = int(p.lattice.steps_per_year)
     horizon = float(p.horizon)
@@ -357,7 +558,7 @@ def convergence(appraisal) -> Convergence | None:
         if n == chosen:
             values.append(appraisal.expanded_npv)
         else:
-            values.append(expanded_npv(replace(p, lattice=replace(p.lattice, steps_per_year=n))))
+            values.append(expanded_npv(copier({"lattice.steps_per_year": n})))
     finest = values[-1]
     gap = abs(appraisal.expanded_npv - finest) / abs(finest) if finest else None
     tol = SETTLED * abs(finest) if finest else 1e-12
@@ -371,9 +572,13 @@ def convergence(appraisal) -> Convergence | None:
 
 def analyse(appraisal, moves: Moves = DEFAULT_MOVES) -> Sensitivity:
     """Tornado, break-evens and convergence for ``appraisal`` (see the module doc)."""
-    rows, notes = tornado(appraisal, moves)
+    copier = Copier(appraisal.project)
+    rows, notes = tornado(appraisal, moves, copier)
+    if copier.route == "values" and appraisal.project.origin is not None:
+        notes.insert(0, "The project was changed after it was loaded: moved copies are made "
+                        "from its values written back as a project file.")
     return Sensitivity(moves=moves, base_expanded=appraisal.expanded_npv,
                        base_flexibility=appraisal.flexibility_value,
                        decision_today=appraisal.decision_today, rows=tuple(rows),
-                       breakevens=tuple(breakevens(appraisal)),
-                       convergence=convergence(appraisal), notes=tuple(notes))
+                       breakevens=tuple(breakevens(appraisal, copier)),
+                       convergence=convergence(appraisal, copier), notes=tuple(notes))

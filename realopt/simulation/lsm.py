@@ -1,6 +1,6 @@
 """Least-squares Monte Carlo (Longstaff & Schwartz 2001) over the rights' state graph.
 
-Conventions (DESIGN.md, "Valuation on the drivers"): t in years from today; every flow is
+Conventions (docs/design.md, section 10, "Valuation on the drivers"): t in years from today; every flow is
 discounted at the risk-free rate (``market.compounding``); drivers follow their risk-neutral
 dynamics (realopt.simulation.paths). Cash flows: ``at_dates`` pays each cash-flow year's flow at
 that date, computed from the drivers there; ``spread`` pays, at each date, the cash-flow rate at
@@ -51,12 +51,13 @@ def decision_times(right, spy: int) -> list[float]:
 
 
 def build_times(project: Project) -> np.ndarray:
-    """0, every cash-flow year, every decision date (unique, sorted)."""
+    """0, every cash-flow year, every decision date up to the last cash-flow year (unique,
+    sorted): the project ends at its last cash-flow date and no right is used after it."""
     spec = project.simulation
     first, last = project.underlying.drivers.years
     ts = {0.0} | {float(y) for y in range(first, last + 1)}
     for r in project.rights:
-        ts |= {float(t) for t in decision_times(r, spec.steps_per_year)}
+        ts |= {float(t) for t in decision_times(r, spec.steps_per_year) if t <= last + 1e-9}
     out = np.array(sorted(ts))
     keep = np.concatenate([[True], np.diff(out) > 1e-9])
     return out[keep]
@@ -251,23 +252,25 @@ class Problem:
         return out
 
     def flows(self, k: int, x_prev: np.ndarray, x_now: np.ndarray, sflows) -> np.ndarray:
-        """(S, n) undiscounted flow of each state paid at date k (k >= 1)."""
+        """(S, n) undiscounted flow of each state paid at date k (k >= 1), before that date's
+        decisions (the terminal value is apart: :meth:`terminal`)."""
         n = x_now.shape[-1]
         out = np.zeros((len(sflows), n))
         w = self.weight[k]
-        tv = k == self.tv_index and self.tv != 0.0
-        if w == 0.0 and not tv:
+        if w == 0.0:
             return out
         vals = self.formula_values(k - 1 if self.timing == "spread" else k,
                                    x_prev if self.timing == "spread" else x_now) if w else {}
         for s, f in enumerate(sflows):
             if f.key == "":
                 continue
-            if w:
-                out[s] = w * (f.mult * vals[f.key] + f.fixed)
-            if tv:
-                out[s] += f.tv * self.tv
+            out[s] = w * (f.mult * vals[f.key] + f.fixed)
         return out
+
+    def terminal(self, sflows) -> np.ndarray:
+        """(S,) discounted terminal value each state receives at the last cash-flow date, paid
+        after that date's decisions (a sale there replaces it)."""
+        return np.array([f.tv * self.tv for f in sflows]) * self.disc[self.T - 1]
 
     def money(self, edge, k: int, x: np.ndarray):
         """sign * amount received on exercising ``edge`` at date k (scalar or array over paths)."""
@@ -387,6 +390,9 @@ class Policy:
     in_sample: float          # fitted (high-biased) value at t = 0 of the initial state
     refit: dict = field(default_factory=dict)   # (k, s) -> (cutoff, {state: coef}, unc)
     unc: dict = field(default_factory=dict)     # k -> first-stage uncertainty (see _unc)
+    post: dict = field(default_factory=dict)    # (k, s) -> {target: coef} of a commitment's
+    #                                             targets, valued after their own decision
+    unc_src: dict = field(default_factory=dict)  # (k, s) -> uncertainty of those fits
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
@@ -397,11 +403,14 @@ class Policy:
         to today) on driver values x: the first-stage fit everywhere, the refit near and beyond
         the exercise boundary (see :func:`fit`)."""
         B = prob.basis.matrix(x, self.stats[k])
-        g = _edge_gains(prob, self.graph, k, s, eids, x, self.estimates(prob, k, B, _involved(
-            self.graph, s, eids)))
+        est = self.estimates(prob, k, B, _involved(self.graph, s, eids))
+        for t, c in self.post.get((k, s), {}).items():
+            est[t] = predict(B, c)
+        g = _edge_gains(prob, self.graph, k, s, eids, x, est)
         ref = self.refit.get((k, s))
         if ref is None:
-            return _apply_margin(g, self.graph, s, eids, B, self.unc.get(k))
+            return _apply_margin(g, self.graph, s, eids, B,
+                                 self.unc_src.get((k, s), self.unc.get(k)))
         cutoff, b2, unc = ref
         near = np.flatnonzero(g.max(axis=0) >= cutoff)
         if near.size:
@@ -513,7 +522,10 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
     beta: dict = {}
     refit: dict = {}
     unc: dict = {}
+    post: dict = {}
+    unc_src: dict = {}
     P = np.zeros((S, n))
+    terminal = prob.terminal(sflows)
     for k in range(T - 1, -1, -1):
         if progress:
             progress()
@@ -522,8 +534,8 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             corr = _correction(sflows, mart, k + 1, S, n)
             if corr is not None:
                 Y -= corr
-        else:
-            Y = np.zeros((S, n))
+        else:                                # the terminal value, paid after the decisions
+            Y = np.repeat(terminal[:, None], n, axis=1)
         ids = open_edges.get(k)
         if not ids and not all_states:
             P = Y
@@ -542,8 +554,23 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
         unc[k] = _unc(B, Y[needed], coef, needed, G)
         est = {s: predict(B, beta[k][s]) for s in needed}
         P = Y.copy()
-        for s, eids in _sources(graph, ids).items():
-            g = _edge_gains(prob, graph, k, s, eids, x[k], est)
+        srcs = _sources(graph, ids)
+        # invested states decide first; a commitment is then valued with its target's own
+        # decision at the same date (committing and using another right at one date)
+        for s in sorted(srcs, key=lambda q: (not graph.states[q].invested, q)):
+            eids = srcs[s]
+            commit = not graph.states[s].invested
+            V = P if commit else Y           # the targets' realised values
+            est_s = est
+            if commit:
+                tg = sorted(_involved(graph, s, eids) - {s})
+                rows = np.array([Y[s]] + [P[t] for t in tg])
+                cp, Gp = least_squares(B, rows, gram=True)
+                post[(k, s)] = {t: cp[:, j + 1] for j, t in enumerate(tg)}
+                unc_src[(k, s)] = _unc(B, rows, cp, [s] + tg, Gp)
+                est_s = dict(est)
+                est_s.update({t: predict(B, c) for t, c in post[(k, s)].items()})
+            g = _edge_gains(prob, graph, k, s, eids, x[k], est_s)
             best = g.max(axis=0)
             margin_done = False
             # Second stage (as Longstaff & Schwartz regress on the paths in the money): refit
@@ -554,7 +581,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 near = np.flatnonzero(best >= cutoff)
                 inv = sorted(_involved(graph, s, eids))
                 Bn = B[:, near]
-                Yn = Y[inv][:, near]
+                Yn = np.array([(Y if t == s else V)[t][near] for t in inv])
                 c2, G2 = least_squares(Bn, Yn, gram=True)
                 b2 = {t: c2[:, j] for j, t in enumerate(inv)}
                 u2 = _unc(Bn, Yn, c2, inv, G2)
@@ -564,7 +591,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                     {t: predict(Bn, c) for t, c in b2.items()}), graph, s, eids, Bn, u2)
                 margin_done = True
             if not margin_done:
-                g = _apply_margin(g, graph, s, eids, B, unc[k])
+                g = _apply_margin(g, graph, s, eids, B, unc_src.get((k, s), unc[k]))
             pick = g.argmax(axis=0)
             go = g[pick, np.arange(n)] > 0
             realised = Y[s].copy()
@@ -573,11 +600,12 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 hit = go & (pick == j)
                 if hit.any():
                     m = np.broadcast_to(prob.money(e, k, x[k]), (n,)) * prob.disc[k]
-                    tgt = Y[e.target] if e.target not in dead else 0.0
+                    tgt = V[e.target] if e.target not in dead else 0.0
                     realised[hit] = (tgt + m)[hit] if np.ndim(tgt) else m[hit]
             P[s] = realised
     return Policy(graph=graph, sflows=sflows, open_edges=open_edges, beta=beta, stats=stats,
-                  in_sample=float(P[graph.initial].mean()), refit=refit, unc=unc)
+                  in_sample=float(P[graph.initial].mean()), refit=refit, unc=unc, post=post,
+                  unc_src=unc_src)
 
 
 @dataclass
@@ -590,18 +618,30 @@ class Run:
     correction: np.ndarray | None = None   # (n,) martingale sum along the states held
 
 
-def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
+def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray, counts=None):
     """New state per path after the decision at date k, and the money received (undiscounted)
     and the edge taken (-1 none)."""
     graph = pol.graph
-    dead = {s for s, st in enumerate(graph.states) if st.abandoned}
     new = cur.copy()
     money = np.zeros(cur.shape[0])
     taken = np.full(cur.shape[0], -1)
-    for s, eids in _sources(graph, pol.open_edges[k]).items():
+    srcs = _sources(graph, pol.open_edges[k])
+    for invested in (False, True):       # a commitment first, then the invested states decide
+        cur = new.copy()
+        for s, eids in srcs.items():
+            if graph.states[s].invested == invested:
+                _decide_state(prob, pol, k, xk, cur, new, money, taken, s, eids, counts)
+    return new, money, taken
+
+
+def _decide_state(prob, pol, k, xk, cur, new, money, taken, s, eids, counts=None):
+    """The decision at date k of the paths in state s (in place on new, money, taken; a path
+    that takes two edges at one date, a commitment and another, keeps the second in taken)."""
+    graph = pol.graph
+    if True:
         idx = np.flatnonzero(cur == s)
         if idx.size == 0:
-            continue
+            return
         xs = xk[:, idx]
         g = pol.gains(prob, k, s, eids, xs)
         pick = g.argmax(axis=0)
@@ -617,16 +657,17 @@ def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray):
         if hit.any():
             tgt = np.array([graph.edges[c].target for c in choice[hit]])
             new[idx[hit]] = tgt
-            money[idx[hit]] = cash[hit]
+            money[idx[hit]] += cash[hit]
             taken[idx[hit]] = choice[hit]
-    return new, money, taken
+            if counts is not None:
+                np.add.at(counts, choice[hit], 1)
 
 
 def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progress=None,
         mart: dict | None = None) -> Run:
-    """``mart``: martingale increments of these paths; their sum along the states held is
-    returned as ``correction`` (zero mean: a control variate for ``values``)."""
-    """Apply the fitted policy forward on paths ``x`` (independent of the fit)."""
+    """Apply the fitted policy forward on paths ``x`` (independent of the fit). ``mart``:
+    martingale increments of these paths; their sum along the states held is returned as
+    ``correction`` (zero mean: a control variate for ``values``)."""
     graph = pol.graph
     S, E, n, T = len(graph.states), len(graph.edges), x.shape[-1], prob.T
     cur = np.full(n, graph.initial)
@@ -646,13 +687,14 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
             if corr is not None:
                 ctrl += corr[cur, cols]
         if k in pol.open_edges:
-            cur, money, taken = decide(prob, pol, k, x[k], cur)
+            counts = np.zeros(E) if record else None
+            cur, money, taken = decide(prob, pol, k, x[k], cur, counts)
             total += prob.disc[k] * money
             if record:
-                hit = taken >= 0
-                exe[k] = np.bincount(taken[hit], minlength=E)[:E] / n
+                exe[k] = counts / n
         if record:
             occ[k] = np.bincount(cur, minlength=S)[:S] / n
+    total += prob.terminal(pol.sflows)[cur]        # paid after the last date's decisions
     return Run(values=total, occupancy=occ, exercised=exe, correction=ctrl)
 
 
@@ -676,18 +718,26 @@ def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, 
     dead = {s for s, st in enumerate(graph.states) if st.abandoned}
     live = [s for s in range(S) if s not in dead]
     gen = generator(seed, "inner")
+    terminal = prob.terminal(pol.sflows)
 
     def value_fn(k, xk):
         """(S, m) fitted value after the decision at date k, discounted to today."""
         m = xk.shape[-1]
-        out = np.zeros((S, m))
         if k == T - 1 and k not in pol.open_edges:
-            return out
+            return np.repeat(terminal[:, None], m, axis=1)
+        out = np.zeros((S, m))
         B = prob.basis.matrix(xk, pol.stats[k])
         est = pol.estimates(prob, k, B, set(live))
         for s in live:
             out[s] = est[s]
-        for s, eids in _sources(graph, pol.open_edges.get(k, [])).items():
+        srcs = _sources(graph, pol.open_edges.get(k, []))
+        for s in sorted(srcs, key=lambda q: (not graph.states[q].invested, q)):
+            eids = srcs[s]
+            if not graph.states[s].invested:   # a commitment: its target after its decision
+                post = {t: out[t] for t in _involved(graph, s, eids) - {s}}
+                g = _edge_gains(prob, graph, k, s, eids, xk, {**est, **post})
+                out[s] = out[s] + np.maximum(g.max(axis=0), 0.0)
+                continue
             g = _edge_gains(prob, graph, k, s, eids, xk, est)
             carry = out[s].copy()
             ref = pol.refit.get((k, s))
@@ -740,14 +790,16 @@ def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, 
             fl = prob.disc[k + 1] * prob.flows(k + 1, outer[k], outer[k + 1], pol.sflows)
             G = Z + fl - incs[k + 1]
         else:
-            G = np.zeros((S, n))
+            G = np.repeat(terminal[:, None], n, axis=1)
         Znew = G.copy()
-        for s, eids in _sources(graph, pol.open_edges.get(k, [])).items():
+        srcs = _sources(graph, pol.open_edges.get(k, []))
+        for s in sorted(srcs, key=lambda q: (not graph.states[q].invested, q)):
+            V = Znew if not graph.states[s].invested else G    # commitments: after decisions
             best = G[s]
-            for e_id in eids:
+            for e_id in srcs[s]:
                 e = graph.edges[e_id]
                 m = np.broadcast_to(prob.money(e, k, outer[k]), (n,)) * prob.disc[k]
-                best = np.maximum(best, (G[e.target] if e.target not in dead else 0.0) + m)
+                best = np.maximum(best, (V[e.target] if e.target not in dead else 0.0) + m)
             Znew[s] = best
         Z = Znew
     return Z[graph.initial]

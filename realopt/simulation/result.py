@@ -19,8 +19,8 @@ import numpy as np
 
 from ..errors import ValuationError
 from ..model import Project, Switch
-from ..rights import (build_state_graph, prepared_rights, requirement_closure,
-                      structure_warnings, usable_subset)
+from ..rights import (base_description, build_state_graph, prepared_rights,
+                      requirement_closure, structure_warnings, usable_subset)
 from . import lsm
 from .paths import change_measure, dynamics, simulate
 
@@ -126,6 +126,13 @@ class SimulationAppraisal:
     fan_years: np.ndarray
     fan: dict = field(default_factory=dict)   # driver -> {percentile: array} (real-world)
     method: str = "simulation"
+    base: str = ""                            # the base project every subset values
+    headline_warnings: tuple[str, ...] = ()   # the warnings that bear on the headline numbers
+    cash_flow_value: float | None = None      # risk-neutral value of the file's plain flows
+
+    @property
+    def present_value_stderr(self) -> float:
+        return self.standard_error["present_value"]
 
     def right(self, name: str) -> SimRightValue:
         return next(r for r in self.rights if r.name == name)
@@ -136,7 +143,12 @@ class SimulationAppraisal:
         return {
             "project": p.name, "currency": p.currency, "unit": p.unit,
             "method": "simulation",
-            "present_value": self.present_value, "investment_pv": self.investment_pv,
+            "present_value": self.present_value,
+            "present_value_stderr": self.standard_error["present_value"],
+            "cash_flow_value": (self.present_value if self.cash_flow_value is None
+                                else self.cash_flow_value),
+            "base": self.base, "headline_warnings": list(self.headline_warnings),
+            "investment_pv": self.investment_pv,
             "static_npv": self.static_npv, "expanded_npv": self.expanded_npv,
             "flexibility_value": self.flexibility_value, "interaction": self.interaction,
             "decision_today": self.decision_today,
@@ -453,6 +465,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
 
     cache: dict = {}
     policies: dict = {}
+    full_key = frozenset(r.name for r in usable_subset(rights, set(names)))
 
     def value_of(subset_names):
         """(pathwise value, pathwise martingale control) of a subset of rights."""
@@ -460,7 +473,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         key = frozenset(r.name for r in usable)
         if key not in cache:
             graph = build_state_graph(usable)
-            full = key == frozenset(names)
+            full = key == full_key
             pol = lsm.fit(prob, graph, x_fit, stats, open_by, all_states=full and ub_asked,
                           progress=prog)
             res = lsm.run(prob, pol, x_val, record=full, progress=prog, mart=mart)
@@ -472,7 +485,6 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     base, base_c = value_of([])
     vals = {m: value_of([names[k] for k in range(len(names)) if m >> k & 1])
             for m in range(masks)}
-    full_key = frozenset(r.name for r in usable_subset(rights, set(names)))
     pol, res_rn = policies[full_key]
     v_full, c_full = vals[masks - 1]
     w = shapley_weights(len(names)) if names else []
@@ -512,6 +524,8 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     expanded, se_full = estimate(v_full, c_full)
     flex, se_flex = estimate(v_full - base, c_full - base_c)
     present_value = static + investment_pv
+
+    plain_value = _plain_value(prob, dyn, x_val, anti)
 
     # rules in driver units, from the fitting paths' spread of the drivers
     thresholds, maps, cf_rules, influence = _rules(prob, pol, x_fit, stats, spec)
@@ -555,8 +569,10 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         out_rights.append(_right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se,
                                        thresholds.get(r.name, ()), cf_rules.get(r.name),
                                        maps, fmt))
-    warnings = list(project.warnings) + structure_warnings(
-        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
+    headline = structure_warnings(
+        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0,
+        terminal_value=prob.tv)
+    warnings = list(project.warnings) + headline
     info = lsm_info(project, prob, n, anti, open_by, graph, pol, time.monotonic() - t_start)
     return SimulationAppraisal(
         project=project, present_value=present_value, investment_pv=investment_pv,
@@ -570,7 +586,9 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         real_world_dcf={"value": rw_dcf, "standard_error": rw_se,
                         "discount_rate": project.market.discount_rate},
         warnings=tuple(warnings), state_graph=graph, driver_maps=tuple(maps),
-        fan_years=fan_years, fan=fan)
+        fan_years=fan_years, fan=fan,
+        base=base_description(rights, "the cash flows of the drivers as given"),
+        headline_warnings=tuple(headline), cash_flow_value=plain_value)
 
 
 def lsm_min_paths(prob: lsm.Problem) -> int:
@@ -604,12 +622,31 @@ def _exact_base_value(prob: lsm.Problem, dyn) -> float | None:
     f = prob.state_flows(build_state_graph(()))[0]
     if prob.tax or f.key == "" or not prob.formulas[f.key].is_affine(set(prob.names)):
         return None
-    total = 0.0
+    total = float(prob.terminal([f])[0])
     for k in range(1, prob.T):
         ex_now = expected(dyn, prob.times[k])[:, None]
         ex_prev = expected(dyn, prob.times[k - 1])[:, None]
         total += prob.disc[k] * float(prob.flows(k, ex_prev, ex_now, [f])[0, 0])
     return total
+
+
+def _plain_value(prob: lsm.Problem, dyn, x: np.ndarray, anti: bool) -> float:
+    """Risk-neutral value of the file's own cash flows (the formula as written, every switch
+    mode aside): closed form when affine and untaxed, else the mean over the valuing paths."""
+    from .paths import expected
+
+    f = lsm.StateFlow("base", 1.0, 0.0, 1.0)
+    total = float(prob.terminal([f])[0])
+    if not prob.tax and prob.formulas["base"].is_affine(set(prob.names)):
+        for k in range(1, prob.T):
+            ex_now = expected(dyn, prob.times[k])[:, None]
+            ex_prev = expected(dyn, prob.times[k - 1])[:, None]
+            total += prob.disc[k] * float(prob.flows(k, ex_prev, ex_now, [f])[0, 0])
+        return total
+    acc = np.zeros(x.shape[-1])
+    for k in range(1, prob.T):
+        acc += prob.disc[k] * prob.flows(k, x[k - 1], x[k], [f])[0]
+    return total + _mean_se(acc, anti)[0]
 
 
 def _real_world_dcf(prob: lsm.Problem, x: np.ndarray, anti: bool):
@@ -620,6 +657,7 @@ def _real_world_dcf(prob: lsm.Problem, x: np.ndarray, anti: bool):
     total = np.zeros(x.shape[-1])
     for k in range(1, prob.T):
         total += g[k] * prob.flows(k, x[k - 1], x[k], sflows)[0]
+    total += sflows[0].tv * prob.tv * g[prob.T - 1]
     return _mean_se(total, anti)
 
 
