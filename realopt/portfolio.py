@@ -277,6 +277,11 @@ def run_portfolio(args) -> int:
     for f in args.files:                          # validate everything before any work is sent
         try:
             project = resolver(load_from_args(args, f))
+            if project.valuation == "simulation":
+                raise ValuationError(
+                    f"{f}: valuation: simulation is not covered by realopt portfolio yet (the "
+                    "choices today are read off the lattice). Fix: appraise it with realopt "
+                    "appraise, or value it on the lattice for the portfolio")
             refusal = None if args.allow_large else guard_message(project, make_plan(project))
             if refusal:
                 raise ValuationError(f"{f}: {refusal}")

@@ -356,6 +356,9 @@ def test_cli_check_and_appraise_json(tmp_path):
     rep = run("report", str(f), "-o", str(tmp_path / "out"))
     assert rep.returncode == 1 and "simulation" in rep.stderr
     assert not (tmp_path / "out").exists()
+    pf = run("portfolio", str(f), "-o", str(tmp_path / "pf"))
+    assert pf.returncode == 1 and "valuation: simulation" in pf.stderr
+    assert "Traceback" not in pf.stderr and not (tmp_path / "pf").exists()
 
 
 # --- the whole state graph against the lattice ------------------------------------------------
