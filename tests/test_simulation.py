@@ -483,6 +483,15 @@ def test_simulation_demo_reads_in_prices(simulation_demos):
         assert a.driver_maps and {m.x_driver for m in a.driver_maps} <= set(
             d.name for d in p.underlying.drivers.drivers)
         assert all(0.0 <= u <= 1.0 for r in a.rights for u in r.use_real_world)
+        for r in a.rights:
+            if r.type == "switch":
+                # first use never falls and is at least the share away from the start mode at
+                # each date (common practice); the mode shares add up to the invested share
+                u = np.array(r.use_real_world)
+                assert np.all(np.diff(u) >= -1e-12)
+                away = sum(np.array(v[1]) for m, v in r.mode_shares.items()
+                           if m != a.project.right(r.name).start)
+                assert np.all(u >= away - 1e-12)
         assert sum(r.shapley_value for r in a.rights) == pytest.approx(a.flexibility_value,
                                                                        abs=1e-9)
 

@@ -616,6 +616,8 @@ class Run:
     occupancy: np.ndarray     # (T, S) share of paths in each state after each date's decision
     exercised: np.ndarray     # (T, E) share of paths taking each edge at each date
     correction: np.ndarray | None = None   # (n,) martingale sum along the states held
+    first_use: dict = field(default_factory=dict)   # switch name -> (T,) share of paths that
+    #                                                 have left its start mode at least once
 
 
 def decide(prob: Problem, pol: Policy, k: int, xk: np.ndarray, cur: np.ndarray, counts=None):
@@ -676,6 +678,10 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
     exe = np.zeros((T, E)) if record else np.zeros((0, E))
     cols = np.arange(n)
     ctrl = np.zeros(n) if mart is not None else None
+    sw_edges = {r.name: np.array([i for i, e in enumerate(graph.edges) if e.right == r.name])
+                for r in graph.rights if r.kind == "switch"} if record else {}
+    ever = {name: np.zeros(n, dtype=bool) for name in sw_edges}
+    first = {name: np.zeros(T) for name in sw_edges}
     for k in range(T):
         if progress:
             progress()
@@ -692,10 +698,15 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
             total += prob.disc[k] * money
             if record:
                 exe[k] = counts / n
+                for name, ids in sw_edges.items():
+                    if ids.size:
+                        ever[name] |= np.isin(taken, ids)
         if record:
             occ[k] = np.bincount(cur, minlength=S)[:S] / n
+            for name in sw_edges:
+                first[name][k] = ever[name].mean()
     total += prob.terminal(pol.sflows)[cur]        # paid after the last date's decisions
-    return Run(values=total, occupancy=occ, exercised=exe, correction=ctrl)
+    return Run(values=total, occupancy=occ, exercised=exe, correction=ctrl, first_use=first)
 
 
 # --- dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) ------------------------------

@@ -85,6 +85,7 @@ class SimRightValue:
     use_real_world: tuple[float, ...]
     use_measure: str
     rule: str
+    mode_shares: dict | None = None   # switch: mode -> (risk-neutral, real-world) shares
 
 
 @dataclass(frozen=True)
@@ -265,9 +266,12 @@ def _right_dict(r: SimRightValue) -> dict:
         "thresholds": [{"year": t.year, "state": t.state, "action": t.action,
                         "driver": t.driver, "exercise_above": t.lower,
                         "exercise_below": t.upper, "never": t.never} for t in r.thresholds],
-        "chance_of_use": {"years": list(r.use_years), "measure": r.use_measure,
-                          "risk_neutral": list(r.use_risk_neutral),
-                          "real_world": list(r.use_real_world)},
+        "chance_of_use": dict(
+            {"years": list(r.use_years), "measure": r.use_measure,
+             "risk_neutral": list(r.use_risk_neutral), "real_world": list(r.use_real_world)},
+            **({"modes": {m: {"risk_neutral": list(rn), "real_world": list(rw)}
+                          for m, (rn, rw) in r.mode_shares.items()}}
+               if r.mode_shares is not None else {})),
     }
 
 
@@ -898,14 +902,22 @@ def _sample(T: int, limit: int = 240) -> np.ndarray:
 def _right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se, thr, cf_rule, maps, fmt):
     sample = _sample(prob.T)
     edge_ids = [k for k, e in enumerate(graph.edges) if e.right == r.name]
+    mode_shares = None
     if isinstance(r, Switch):
         switches = [s for s in graph.rights if isinstance(s, Switch)]
         k = switches.index(r)
-        away = [i for i, s in enumerate(graph.states)
-                if not s.abandoned and s.invested and s.modes[k] != r.start]
-        rn_use = res_rn.occupancy[:, away].sum(axis=1)
-        rw_use = res_rw.occupancy[:, away].sum(axis=1)
-        measure = f"chance of being in a mode other than '{r.start}' at each date"
+        rn_use = res_rn.first_use[r.name]
+        rw_use = res_rw.first_use[r.name]
+        mode_shares = {}
+        for m in r.modes:
+            cols = [i for i, s in enumerate(graph.states)
+                    if not s.abandoned and s.invested and s.modes[k] == m.name]
+            mode_shares[m.name] = tuple(
+                tuple(float(min(1.0, max(0.0, x))) for x in res.occupancy[:, cols].sum(
+                    axis=1)[sample]) for res in (res_rn, res_rw))
+        measure = (f"chance of having switched out of '{r.start}' at least once by each date "
+                   "(never falls); the mode shares are the chance of being in each mode at "
+                   "each date (the project invested and not abandoned)")
     else:
         rn_use = np.cumsum(res_rn.exercised[:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(res_rw.exercised[:, edge_ids].sum(axis=1))
@@ -921,7 +933,7 @@ def _right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se, thr, cf_r
         use_years=tuple(float(prob.times[i]) for i in sample),
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
-        use_measure=measure, rule=rule)
+        use_measure=measure, rule=rule, mode_shares=mode_shares)
 
 
 def _side(thr) -> str | None:
