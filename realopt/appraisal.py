@@ -149,6 +149,8 @@ class Appraisal:
             "warnings": list(self.warnings),
             "headline_warnings": list(self.headline_warnings),
             "caution": CAUTION,
+            "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
+            "standard_error": {"present_value": 0.0, "expanded_npv": 0.0, "flexibility_value": 0.0},
         }
 
     def summary(self):
@@ -287,10 +289,14 @@ def _without_gc_pauses(fn):
 @_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
     """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
-
     A project built in Python is checked against the model's rules first (realopt.validate):
-    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get."""
+    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get.
+    (``valuation: simulation`` goes to realopt.simulation: a SimulationAppraisal.)"""
     validate.check(project)
+    if getattr(project, "valuation", "lattice") == "simulation":
+        from .simulation import appraise as simulate
+
+        return simulate(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "

@@ -214,6 +214,11 @@ def run_check(args) -> int:
     for path in args.files:
         try:
             project = load_from_args(args, path)
+            if project.valuation == "simulation":      # realopt.simulation (own plan and text)
+                from .simulation.text import check_text
+
+                _out(check_text(path, project, available_memory()))
+                continue
             pl = make_plan(project)
         except ProjectError as err:
             _err(str(err))             # every problem names the file
@@ -309,6 +314,13 @@ def appraise_from_args(args, extra_solves=None):
     from .lattice import plan as make_plan
 
     project = load_from_args(args, args.file)
+    if project.valuation == "simulation":              # realopt.simulation (own guard)
+        from .simulation.text import appraise_guarded
+
+        try:
+            return appraise_guarded(project, args.allow_large, available_memory())
+        except ValuationError as err:
+            raise ValuationError(f"{args.file}: {err}") from None
     try:
         if not args.allow_large:
             extra = extra_solves(project) if extra_solves else 0.0
@@ -325,7 +337,8 @@ def run_appraise(args) -> int:
     if args.json:
         _out(to_json(result.to_dict()))
     else:
-        _out(headline(result))
+        _out(result.headline(WIDTH) if getattr(result, "method", "") == "simulation"
+             else headline(result))
     return 0
 
 

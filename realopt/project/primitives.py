@@ -9,6 +9,7 @@ import math
 from pathlib import Path
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from ..errors import Problem
 from .paths import Index, _float_text, describe, format_path
 from .reading import Tree
@@ -36,6 +37,8 @@ class Primitives:
         self.warnings: list[str] = []
         self._reported = {p.key for p in tree.problems}   # refused by the reader already
         self._typos: set = set()                          # (mapping path, key it suggests)
+        self.valuation, self.simulation_spec = "lattice", None   # see realopt.project_simulation
+        self.driver_names: dict = {}
 
     # ---- reporting -------------------------------------------------------------------------
 
@@ -180,6 +183,9 @@ class Primitives:
         expected = (f"{what}{sign}: a number, a mapping {{year: amount}} (linear between the "
                     "years, flat beyond), or {start: amount, growth: yearly rate}")
         ge = 0.0 if nonneg else None
+        if isinstance(value, str) and simulation_keys.is_simulation(self) \
+                and _float_text(value.strip().replace(" ", "")) is None:
+            return simulation_keys.money_formula(self, path, value, what)
         if isinstance(value, dict):
             if not value:
                 self.bad(path, "an empty mapping", expected)

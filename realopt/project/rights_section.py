@@ -7,6 +7,7 @@ import difflib
 import re
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from .keys import COMMON_RIGHT_KEYS, RIGHT_KEYS
 from .paths import Index, describe
 from .primitives import _ABSENT
@@ -228,10 +229,17 @@ class RightsSection:
             mp = modes_path + (mname,)
             mname = str(mname)
             spec = {} if spec is None else spec
-            if self.mapping(mp, spec, ("scale", "fixed"), "a mode: {scale: multiplier of the "
-                            "base cash flows, fixed: yearly flow in this mode}") is None:
+            if self.mapping(mp, spec, ("scale", "fixed", "cash_flow"), "a mode: {scale: "
+                            "multiplier of the base cash flows, fixed: yearly flow in this "
+                            "mode}") is None:
                 ok = False
                 continue
+            mcf = None
+            if spec.get("cash_flow") is not None:
+                mcf = simulation_keys.mode_cash_flow(self, mp + ("cash_flow",), spec["cash_flow"])
+                if mcf is None:
+                    ok = False
+                    continue
             sc = self.number(mp + ("scale",), spec.get("scale", 1.0), "the multiplier on the "
                              "base cash flows in this mode, 0 or more", ge=0.0)
             fx = self.number(mp + ("fixed",), spec.get("fixed", 0.0), "the fixed yearly flow in "
@@ -239,7 +247,7 @@ class RightsSection:
             if sc is None or fx is None:
                 ok = False
             else:
-                modes.append(model.Mode(name=mname, scale=sc, fixed=fx))
+                modes.append(model.Mode(name=mname, scale=sc, fixed=fx, cash_flow=mcf))
         known = [str(m) for m in raw]
         start = known[0]
         if item.get("start") is not None:
