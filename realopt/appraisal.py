@@ -150,7 +150,9 @@ class Appraisal:
             "headline_warnings": list(self.headline_warnings),
             "caution": CAUTION,
             "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
-            "standard_error": {"present_value": 0.0, "expanded_npv": 0.0, "flexibility_value": 0.0},
+            # the lattice is exact given V0; a V0 estimated by simulation carries its error
+            "standard_error": {"present_value": self.present_value_stderr, "expanded_npv": 0.0,
+                               "flexibility_value": 0.0},
         }
 
     def summary(self):
