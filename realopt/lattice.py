@@ -275,7 +275,7 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
         for t in right.dates:
             if right.window[0] - 1e-12 <= t <= right.window[1] + 1e-12:
                 mask[grid.step_of(t)] = True
-    if right.kind == "defer":           # committing today is always one of the choices
+    if right.commits:                   # committing today is always one of the choices
         mask[0] = True
     if grid.last_step is not None:
         mask[grid.last_step + 1:] = False

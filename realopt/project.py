@@ -33,6 +33,7 @@ import yaml
 
 from . import model
 from .errors import Problem, ProjectError
+from .rights.registry import right_keys, right_type
 
 MAX_FILE_BYTES = 1_000_000        # a project file is a few kilobytes; data belongs in a CSV
 MAX_NODES = 100_000               # values after expanding aliases ("billion laughs" guard)
@@ -48,7 +49,6 @@ _SCALAR_TAGS = {_TAG + t for t in ("str", "int", "float", "bool", "null", "times
 _TEXT_TAGS = {_TAG + t for t in ("str", "timestamp", "value")}
 _FLOAT_TEXT = re.compile(r"^[-+]?(\d[\d_]*\.?\d*|\.\d+)[eE][-+]?\d+$")   # 1e-3 (YAML 1.1 misses it)
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
-_MOVE = re.compile(r"^\s*(.+?)\s*->\s*(.+?)\s*$")
 
 TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights")
 PROJECT_KEYS = ("name", "currency", "unit")
@@ -59,13 +59,7 @@ DRIVER_FORM_KEYS = ("years", "drivers", "correlation", "cash_flow", "tax_rate")
 UNDERLYING_KEYS = CASH_FLOW_KEYS + PV_KEYS + DRIVER_FORM_KEYS + ("volatility",)
 LATTICE_KEYS = ("steps_per_year", "up", "down", "step_years")
 COMMON_RIGHT_KEYS = ("name", "type", "window", "exercise", "dates", "requires", "excludes")
-RIGHT_KEYS = {
-    "defer": ("cost",),
-    "expand": ("scale", "cost"),
-    "contract": ("scale", "savings"),
-    "abandon": ("salvage",),
-    "switch": ("modes", "start", "costs"),
-}
+RIGHT_KEYS = right_keys()         # kind -> its keys, from the registry (realopt.rights)
 FORECAST_KEYS = ("file", "year", "value", "sheet")
 
 
@@ -1349,7 +1343,7 @@ class _Builder:
         excludes = self.names(path + ("excludes",), item.get("excludes"))
         if kind is None:
             return None
-        specific = getattr(self, f"right_{kind}")(path, item)
+        specific = right_type(kind).parse(self, path, item)
         if None in (name, window, exercise, dates, requires, excludes, specific):
             return None
         if kind == "defer" and window[0] != 0:
@@ -1424,142 +1418,21 @@ class _Builder:
             return None
         return tuple(out)
 
+    # each right type parses its own keys (realopt/rights/<type>.py); messages are located here
     def right_defer(self, path, item):
-        if item.get("cost") is None:
-            return {"cost": None}
-        cost = self.schedule(path + ("cost",), item["cost"], "the cost paid on committing",
-                             nonneg=True)
-        return {"cost": cost} if cost is not None else None
+        return right_type("defer").parse(self, path, item)
 
     def right_expand(self, path, item):
-        return self._scaled(path, item, "expand", "cost", "the cost of the expansion",
-                            {"gt": 0.0}, "the added fraction of the current scale, above 0 "
-                            "(0.3 = 30% more)", nonneg=True)
+        return right_type("expand").parse(self, path, item)
 
     def right_contract(self, path, item):
-        return self._scaled(path, item, "contract", "savings", "the one-off savings on "
-                            "contracting", {"gt": 0.0, "lt": 1.0}, "the fraction of the current "
-                            "scale given up, above 0 and below 1 (0.4 = 40% smaller)")
-
-    def _scaled(self, path, item, kind, money, money_what, bounds, scale_what, nonneg=False):
-        scale = None
-        if "scale" not in item:
-            self.missing(path + ("scale",), scale_what)
-        else:
-            fix = "to close entirely use an abandon right" if kind == "contract" else ""
-            scale = self.number(path + ("scale",), item["scale"], scale_what, fix=fix, **bounds)
-        amount = model.Schedule.constant(0.0)
-        if item.get(money) is not None:
-            amount = self.schedule(path + (money,), item[money], money_what, nonneg=nonneg)
-        if scale is None or amount is None:
-            return None
-        return {"scale": scale, money: amount}
+        return right_type("contract").parse(self, path, item)
 
     def right_abandon(self, path, item):
-        if item.get("salvage") is None:
-            return {"salvage": model.Schedule.constant(0.0)}
-        s = self.schedule(path + ("salvage",), item["salvage"], "the salvage value (proceeds "
-                          "on selling or closing; negative for a net closure cost)")
-        return {"salvage": s} if s is not None else None
+        return right_type("abandon").parse(self, path, item)
 
     def right_switch(self, path, item):
-        modes_path = path + ("modes",)
-        if "modes" not in item:
-            self.missing(modes_path, "a mapping of operating modes, e.g. {run: {scale: 1.0}, "
-                         "idle: {scale: 0.0, fixed: -1.2}}")
-            return None
-        raw = item["modes"]
-        if not isinstance(raw, dict) or len(raw) < 2:
-            self.bad(modes_path, describe(raw), "a mapping of at least two operating modes, e.g. "
-                     "{run: {scale: 1.0}, idle: {scale: 0.0, fixed: -1.2}}")
-            return None
-        modes, ok = [], True
-        for mname, spec in raw.items():
-            mp = modes_path + (mname,)
-            mname = str(mname)
-            spec = {} if spec is None else spec
-            if self.mapping(mp, spec, ("scale", "fixed"), "a mode: {scale: multiplier of the "
-                            "base cash flows, fixed: yearly flow in this mode}") is None:
-                ok = False
-                continue
-            sc = self.number(mp + ("scale",), spec.get("scale", 1.0), "the multiplier on the "
-                             "base cash flows in this mode, 0 or more", ge=0.0)
-            fx = self.number(mp + ("fixed",), spec.get("fixed", 0.0), "the fixed yearly flow in "
-                             "this mode (+ inflow, - running cost)")
-            if sc is None or fx is None:
-                ok = False
-            else:
-                modes.append(model.Mode(name=mname, scale=sc, fixed=fx))
-        known = [str(m) for m in raw]
-        start = known[0]
-        if item.get("start") is not None:
-            start = self._mode_name(path + ("start",), item["start"], known, "the mode the "
-                                    "project starts in")
-        costs = self.switch_costs(path + ("costs",), item.get("costs"), known, "costs" in item)
-        if not ok or start is None or costs is None:
-            return None
-        reach, frontier = {start}, [start]
-        while frontier:
-            m = frontier.pop()
-            for a, b, _ in costs:
-                if a == m and b not in reach:
-                    reach.add(b)
-                    frontier.append(b)
-        for m in known:
-            if m not in reach:
-                self.bad(modes_path + (m,), f"the mode {m}, which no move reaches from {start}",
-                         "every mode reachable through costs", f"add a cost for "
-                         f"{start}->{m}, or delete the mode", at="key")
-                ok = False
-        if not ok:
-            return None
-        return {"modes": tuple(modes), "start": start, "costs": costs}
-
-    def _mode_name(self, path, value, known, what):
-        if not isinstance(value, str) or value.strip() not in known:
-            hint = difflib.get_close_matches(str(value), known, n=1)
-            self.bad(path, describe(value), f"{what}: one of the modes {', '.join(known)}",
-                     f"did you mean {hint[0]}?" if hint else "add the mode under modes, or "
-                     "use one of those listed")
-            return None
-        return value.strip()
-
-    def switch_costs(self, path, value, known, given):
-        expected = "a mapping of moves to their costs, e.g. {run->idle: 0.5, idle->run: 2.0}"
-        if not given:
-            self.missing(path, expected)
-            return None
-        if not isinstance(value, dict) or not value:
-            self.bad(path, describe(value), expected)
-            return None
-        out, ok = [], True
-        for move, cost in value.items():
-            p = path + (move,)
-            m = _MOVE.match(str(move))
-            if not m:
-                self.bad(p, f"the key {move}", "a move written from->to, e.g. run->idle",
-                         at="key")
-                ok = False
-                continue
-            a, b = m.group(1), m.group(2)
-            for name in (a, b):
-                if name not in known:
-                    hint = difflib.get_close_matches(name, known, n=1)
-                    self.bad(p, f"the mode {name}, which is not under modes",
-                             f"moves between the modes {', '.join(known)}",
-                             f"did you mean {hint[0]}?" if hint else f"add {name} under modes",
-                             at="key")
-                    ok = False
-            if a == b:
-                self.bad(p, f"a move from {a} to itself", "a move between two different modes",
-                         at="key")
-                ok = False
-            sched = self.schedule(p, cost, f"the cost of moving from {a} to {b}", nonneg=True)
-            if sched is None:
-                ok = False
-            elif ok:
-                out.append((a, b, sched))
-        return tuple(out) if ok else None
+        return right_type("switch").parse(self, path, item)
 
     def links(self, path, rights):
         """requires/excludes: known names, not self, requires never an abandon right, no cycle."""

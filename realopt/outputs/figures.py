@@ -15,6 +15,7 @@ from typing import Callable
 
 import numpy as np
 
+from ..rights import Action
 from . import style
 from .sensitivity import SETTLED
 from .tables import Fmt, breakeven_text
@@ -419,7 +420,7 @@ def _state_layout(a):
     sg = a.state_graph
     g = sg.graph
     depth = nx.single_source_shortest_path_length(g, sg.initial)
-    sink = [k for k in g.nodes if g.nodes[k]["label"] == "abandoned"]
+    sink = [k for k in g.nodes if g.nodes[k]["abandoned"]]
     rows: dict[int, list] = {}
     for k in g.nodes:
         if k not in sink:
@@ -428,8 +429,8 @@ def _state_layout(a):
     for u, v, e in g.edges(data=True):
         verb = "pays" if e["sign"] < 0 else "receives"
         name = ", ".join(e["rights"])
-        what = ("invest, " if e["label"] == "commit" else "" if e["label"] in (
-            "expand", "contract", "abandon") else f"{e['label']}: ")
+        what = ("invest, " if e["action"] == Action.COMMIT else f"{e['label']}: "
+                if e["action"] == Action.SWITCH else "")
         moves.setdefault(f"{name}: {what}{verb} {e['amount']}", None)
     return g, rows, sink, list(moves)
 
@@ -466,13 +467,13 @@ def _draw_states(fig, a, f: Fmt):
     for k, (x, y) in pos.items():
         nd = g.nodes[k]
         lines = _wrap(nd["label"], 34).split("\n")
-        if nd["label"] not in ("abandoned", "not yet invested"):
+        if nd["invested"] and not nd["abandoned"]:
             lines.append(f"scale {nd['scale']:g}" + (f", fixed {f.money(nd['fixed'])} a year"
                                                       if nd["fixed"] else ""))
         w = max(len(t) for t in lines) * size * 0.55 / 72 + 0.2
         h = len(lines) * size * 1.3 / 72 + 0.12
-        fc = "#f3f3f3" if nd["label"] == "abandoned" else (
-            "#fdf3d8" if nd["label"] == "not yet invested" else "#e3ecf7")
+        fc = "#f3f3f3" if nd["abandoned"] else (
+            "#fdf3d8" if not nd["invested"] else "#e3ecf7")
         box = FancyBboxPatch((x - w / 2, y - h / 2), w, h,
                              boxstyle="round,pad=0.02,rounding_size=0.06", fc=fc,
                              ec=style.MUTED, lw=0.8, zorder=3)

@@ -14,7 +14,6 @@ import math
 
 import pandas as pd
 
-from ..model import Abandon, Contract, Defer, Expand, Switch
 
 
 class Fmt:
@@ -211,23 +210,7 @@ def inputs_rows(project, f: Fmt) -> list[tuple[str, str, str]]:
     for r in p.rights:
         sec = f"Right: {r.name}"
         rows.append((sec, "Type and window", f"{r.kind}; {_window_text(r, f)}"))
-        if isinstance(r, Defer):
-            rows.append((sec, "Cost on exercise", _schedule_text(r.cost, f)))
-        elif isinstance(r, Expand):
-            rows.append((sec, "Added scale", f.pct(r.scale)))
-            rows.append((sec, "Cost", _schedule_text(r.cost, f)))
-        elif isinstance(r, Contract):
-            rows.append((sec, "Scale given up", f.pct(r.scale)))
-            rows.append((sec, "Savings received", _schedule_text(r.savings, f)))
-        elif isinstance(r, Abandon):
-            rows.append((sec, "Salvage", _schedule_text(r.salvage, f)))
-        elif isinstance(r, Switch):
-            for mode in r.modes:
-                rows.append((sec, f"Mode '{mode.name}'", f"scale {f.pct(mode.scale)}, fixed "
-                             f"{f.money(mode.fixed)} a year" + (" (start)" if mode.name == r.start
-                                                                 else "")))
-            for a_, b_, c in r.costs:
-                rows.append((sec, f"Cost {a_} -> {b_}", _schedule_text(c, f)))
+        rows += [(sec, k, v) for k, v in r.input_rows(f, _schedule_text)]   # the type's own
         if r.requires:
             rows.append((sec, "Requires", ", ".join(r.requires)))
         if r.excludes:
