@@ -206,6 +206,9 @@ class _Valuer:
         self.base_value = (self.res.present_value if self.plain else
                            scale * self.res.present_value + fixed * self.grid.fixed_pv)
         self.static_npv = self.base_value - self.investment_pv
+        # no right can be used at any step (e.g. every window after the last cash-flow date):
+        # the expanded NPV is the static NPV exactly, not a lattice solve's rounding of it
+        self.live = any(exercise_steps(self.grid, r).any() for r in self.rights)
         self._cache: dict[frozenset, float] = {}
 
     def value(self, names) -> float:
@@ -221,6 +224,8 @@ class _Valuer:
         return self._cache[key]
 
     def _npv(self, sol: Solution, graph: StateGraph) -> float:
+        if not self.live:
+            return self.static_npv
         v = float(sol.values[graph.initial])
         invested_at_start = graph.states[graph.initial].invested
         return v - self.investment_pv if invested_at_start else v

@@ -38,6 +38,8 @@ class Defer(BaseRight):
         return invested
 
     def what(self, money):
+        if self.cost is None:             # before realopt.rights.prepared_rights
+            return "commit the investment (cost: the investment plan, started then)"
         if self.cost.today is not None:
             return (f"commit the investment (cost {money.format(self.cost.today)} today, then "
                     f"{replace(self.cost, today=None).describe(money)})")

@@ -29,18 +29,18 @@ def right_keys() -> dict[str, tuple[str, ...]]:
     return {kind: cls.KEYS for kind, cls in RIGHT_TYPES.items()}
 
 
-def example_project(*rights, horizon: int = 5, **changes):
-    """The standard test project the types' examples are written for: cash flows 20 a year for
-    ``horizon`` years (terminal value 0), investment 80 today, volatility 30%, risk-free 5%,
-    discount 10% (annual), 12 steps a year. ``changes`` replace Project fields."""
+def example_project(*rights, **changes):
+    """The standard test project the types' examples are written for: expected cash flows of 20
+    a year for 5 years except -8 in year 3 (an overhaul year, so that a shutdown can pay), no
+    terminal value, investment 80 today, volatility 30%, risk-free 5% and discount 10% (annual),
+    12 steps a year. ``changes`` replace Project fields."""
     from dataclasses import replace
 
     from ..model import Investment, LatticeSpec, Market, Project, Underlying
 
+    flows = ((1.0, 20.0), (2.0, 20.0), (3.0, -8.0), (4.0, 20.0), (5.0, 20.0))
     p = Project(name="example", market=Market(0.05, 0.10),
-                underlying=Underlying(cash_flows=tuple((float(y), 20.0)
-                                                       for y in range(1, horizon + 1)),
-                                      volatility=0.30),
+                underlying=Underlying(cash_flows=flows, volatility=0.30),
                 investment=Investment(outlays=((0.0, 80.0),)), rights=tuple(rights),
                 lattice=LatticeSpec(steps_per_year=12))
     return replace(p, **changes) if changes else p
