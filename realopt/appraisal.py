@@ -14,6 +14,8 @@ DCF of the file's flows (equal to ``present_value`` when every start mode is the
 """
 from __future__ import annotations
 
+import functools
+import gc
 import math
 from dataclasses import dataclass, replace
 
@@ -266,6 +268,23 @@ def quick_appraisal(project: Project, decision: bool = True) -> tuple[float, flo
     return v.static_npv, full, _decision_today(sol, graph, full, _money_format(project))
 
 
+def _without_gc_pauses(fn):
+    """Run ``fn`` with the cyclic garbage collector paused: an appraisal makes many small
+    objects (policy runs, thresholds) and no reference cycles, and a full collection in the
+    middle of it can cost more than the work."""
+    @functools.wraps(fn)
+    def run(*args, **kwargs):
+        if not gc.isenabled():
+            return fn(*args, **kwargs)
+        gc.disable()
+        try:
+            return fn(*args, **kwargs)
+        finally:
+            gc.enable()
+    return run
+
+
+@_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
     """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
     if len(project.rights) > MAX_RIGHTS:
@@ -284,14 +303,13 @@ def appraise(project: Project) -> Appraisal:
                   for n in names}
     flex = full - val.static_npv
     grid = val.grid
-    rn_state, rn_ex = occupancy(sol, grid.probability)
-    rw_state, rw_ex = occupancy(sol, grid.real_probability)
     sample = _sample_steps(grid.steps)
+    # both measures in one forward pass: [0] risk-neutral, [1] real-world
+    occ = occupancy(sol, (grid.probability, grid.real_probability), at=sample)
     fmt = _money_format(project)
     v0 = val.res.present_value
     rights = tuple(
-        _right_value(r, graph, sol, shares[r.name], standalone[r.name], (rn_state, rn_ex),
-                     (rw_state, rw_ex), sample, fmt, v0)
+        _right_value(r, graph, sol, shares[r.name], standalone[r.name], occ, sample, fmt, v0)
         for r in val.rights)
     headline = structure_warnings(graph, val.res.last_flow_year, grid.horizon,
                                   terminal_value=val.res.terminal_value)
@@ -347,7 +365,8 @@ def _defer_cost_warnings(rights, fmt) -> list[str]:
 def _sample_steps(steps: int, limit: int = 240) -> np.ndarray:
     if steps + 1 <= limit:
         return np.arange(steps + 1)
-    return np.unique(np.round(np.linspace(0, steps, limit)).astype(int))
+    picked = np.round(np.linspace(0, steps, limit)).astype(int)      # non-decreasing
+    return picked[np.concatenate([[True], picked[1:] != picked[:-1]])]
 
 
 def _money_template(project: Project, digits: int = 1) -> str:
@@ -394,42 +413,91 @@ def _crossing(x_far, x_near, x_in, g_far, g_near, g_in, smooth: bool) -> float:
     return float(x_near + min(1.0, max(0.0, w)) * (x_in - x_near))
 
 
+def _crossings(x_far, x_near, x_in, g_far, g_near, g_in, smooth) -> list[float]:
+    """:func:`_crossing` over arrays (nan for None), element by element the same floating
+    point operations; an element that is not finite is handed to :func:`_crossing`."""
+    with np.errstate(all="ignore"):
+        lo_x, hi_x = np.minimum(x_near, x_in), np.maximum(x_near, x_in)
+        pasting = smooth & (g_far < g_near) & (g_near < 0)
+        s_far, s_near = np.sqrt(-g_far), np.sqrt(-g_near)
+        x = x_near + (x_near - x_far) * s_near / (s_far - s_near)
+        out = np.where(pasting, np.minimum(hi_x, np.maximum(lo_x, x)), np.nan)
+        geometric = ~pasting & (np.isnan(g_near) | np.isnan(g_in) | (g_in == g_near))
+        out = np.where(geometric, np.sqrt(x_near * x_in), out)
+        w = -g_near / (g_in - g_near)
+        linear = ~pasting & ~geometric
+        out = np.where(linear, x_near + np.minimum(1.0, np.maximum(0.0, w)) * (x_in - x_near),
+                       out)
+    out = out.tolist()
+    for k in np.flatnonzero(~np.isfinite(out) | (pasting & (s_far == s_near))).tolist():
+        def arg(a):
+            return None if math.isnan(a[k]) else float(a[k])
+        out[k] = _crossing(arg(x_far), float(x_near[k]), float(x_in[k]), arg(g_far),
+                           arg(g_near), arg(g_in), bool(smooth[k]))
+    return out
+
+
 def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
-    """Exercise region bounds of each edge from ``state`` at each step it is open."""
+    """Exercise region bounds of each edge from ``state`` at each step it is open (``steps``:
+    increasing step numbers)."""
     grid, graph, pol = sol.grid, sol.graph, sol.policy
     rights = {r.name: r for r in graph.rights}
     out = []
     label_of = graph.states[state].label
+    times = grid.times.tolist()
+    heads = np.asarray(grid._heads)
+    exf = (1.0 - grid.delta) + (grid.late if grid.late is not None else 0.0)
+    powers = grid._powers
+    nan = float("nan")
+    steps = np.asarray(steps, dtype=int)
     for e_id in edge_ids:
         e = graph.edges[e_id]
         label = rights[e.right].action_text(e)
         open_at = exercise_steps(grid, rights[e.right])
-        for i in steps:
-            i = int(i)
-            if not open_at[i]:
-                continue
-            year = float(grid.times[i])
-            g = pol.gains.get((state, i, e_id))
-            if g is None:
-                out.append(Threshold(year, label_of, label, None, None, never=True))
-                continue
-            lo, hi = g[0], g[1]
-            smooth = (state, i + 1, e_id) in pol.gains
-            lower = upper = None
-            if lo > 0 or hi < i:
-                v = grid.nodes_ex(i)
-                if lo > 0:
-                    lower = _crossing(v[lo - 2] if lo > 1 else None, v[lo - 1], v[lo],
-                                      g[2], g[3], g[4], smooth)
-                if hi < i:
-                    upper = _crossing(v[hi + 2] if hi + 2 <= i else None, v[hi + 1], v[hi],
-                                      g[7], g[6], g[5], smooth)
-            out.append(Threshold(year, label_of, label, lower, upper))
+        found = {}
+        at = steps[open_at[steps]].tolist()
+        rows = [(i, g) for i in at if (g := pol.gains.get((state, i, e_id))) is not None]
+        if rows:
+            i_ = np.array([i for i, _ in rows])
+            lo = np.array([g[0] for _, g in rows])
+            hi = np.array([g[1] for _, g in rows])
+            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # None -> nan
+            smooth = np.array([(state, i + 1, e_id) in pol.gains for i, _ in rows])
+
+            def value(j, ok):              # nodes_ex(i)[j] where ok, nan elsewhere
+                jj = np.where(ok, j, 0)
+                return np.where(ok, heads[i_] * powers[jj] * exf[i_], nan)
+            lower = [None] * len(rows)
+            upper = [None] * len(rows)
+            has = lo > 0
+            if has.any():
+                k = np.flatnonzero(has)
+                vals = _crossings(value(lo - 2, lo > 1)[k], value(lo - 1, has)[k],
+                                  value(lo, has)[k], g_[k, 0], g_[k, 1], g_[k, 2], smooth[k])
+                for kk, x in zip(k.tolist(), vals):
+                    lower[kk] = x
+            has = hi < i_
+            if has.any():
+                k = np.flatnonzero(has)
+                vals = _crossings(value(hi + 2, hi + 2 <= i_)[k], value(hi + 1, has)[k],
+                                  value(hi, hi >= 0)[k], g_[k, 5], g_[k, 4], g_[k, 3],
+                                  smooth[k])
+                for kk, x in zip(k.tolist(), vals):
+                    upper[kk] = x
+            found = {i: (a, b) for (i, _), a, b in zip(rows, lower, upper)}
+        for i in at:
+            bounds = found.get(i)
+            if bounds is None:
+                out.append(Threshold(times[i], label_of, label, None, None, never=True))
+            else:
+                out.append(Threshold(times[i], label_of, label, bounds[0], bounds[1]))
     out.sort(key=lambda t: t.year)
     return out
 
 
-def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightValue:
+def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValue:
+    """``occ``: (state_prob at ``sample``, exercised at every step), each with a leading axis
+    of the two measures (risk-neutral, real-world)."""
     grid = sol.grid
     edge_ids = [k for k, e in enumerate(graph.edges) if e.right == r.name]
     prim = _primary_states(r, graph)
@@ -438,7 +506,7 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
         ids = [k for k in edge_ids if graph.edges[k].source == s]
         thr += _thresholds(sol, s, ids, range(grid.steps + 1))
     # what the chance of use counts is the type's (a switch: first moves out of its start mode)
-    rn_use, rw_use, measure, mode_shares = r.chance_of_use(sol, graph, edge_ids, rn, rw, sample)
+    rn_use, rw_use, measure, mode_shares = r.chance_of_use(sol, graph, edge_ids, occ)
     side = _side(thr)
     return RightValue(
         name=r.name, type=r.kind, window=tuple(float(x) for x in r.window), exercise=r.exercise,
@@ -447,7 +515,7 @@ def _right_value(r, graph, sol, share, alone, rn, rw, sample, fmt, v0) -> RightV
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
         use_measure=measure, mode_shares=mode_shares,
-        rule=_rule(r, [t for t in thr if _plausible(grid, t)], side, fmt, v0,
+        rule=_rule(r, [t for t, ok in zip(thr, _plausible_all(grid, thr)) if ok], side, fmt, v0,
                    float(min(1.0, rw_use[-1])), grid.horizon))
 
 
@@ -479,7 +547,6 @@ def _what(r, money: str) -> str:
     """The rule's action in words (the type's own wording)."""
     return r.what(money)
 
-
 def _plausible(grid: Grid, t: Threshold) -> bool:
     """Whether a threshold lies within 5 standard deviations of ln(project value) at its date
     (risk-neutral centre). Far out in the tree the boundary near a cash-flow date can be huge
@@ -493,6 +560,35 @@ def _plausible(grid: Grid, t: Threshold) -> bool:
         max(1e-300, grid.ex_fraction(i)))
     return all(abs(math.log(b) - centre) <= 5.0 * sd + 1e-12
                for b in (t.lower, t.upper) if b is not None and b > 0)
+
+
+def _plausible_all(grid: Grid, thr) -> list[bool]:
+    """:func:`_plausible` of each threshold: the same floating point test, with the terms of
+    each date computed once for all dates."""
+    n = np.arange(grid.steps + 1)
+    sd = (0.5 * math.log(grid.up / grid.down) * np.sqrt(np.maximum(n, 1))).tolist()
+    g = grid.probability * grid.up + (1 - grid.probability) * grid.down
+    exf = [grid.ex_fraction(i) for i in range(grid.steps + 1)]
+    logs = {x: math.log(max(1e-300, x)) for x in set(exf)}
+    centre = ((grid.log_v0 + grid.log_carry) + n * math.log(g)
+              + np.array([logs[x] for x in exf])).tolist()
+    step = {t: i for i, t in enumerate(grid.times.tolist())}     # = grid.step_of(year)
+    out = []
+    log = math.log
+    for t in thr:
+        ok = True
+        if not t.never:
+            i = step.get(t.year)
+            i = grid.step_of(t.year) if i is None else i
+            c, d = centre[i], 5.0 * sd[i] + 1e-12
+            b = t.lower
+            if b is not None and b > 0:
+                ok = abs(log(b) - c) <= d
+            b = t.upper
+            if ok and b is not None and b > 0:
+                ok = abs(log(b) - c) <= d
+        out.append(ok)
+    return out
 
 
 def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
@@ -556,12 +652,12 @@ def _bound_text(ts, fmt, once: bool = False) -> str:
 def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
     pol = sol.policy
     s0 = graph.initial
-    act = pol.actions(s0, 0)[0] if 0 in pol.runs.get(s0, {}) else 0
+    act = pol.action(s0, 0, 0)
     state = graph.states[s0]
     if not state.invested:
         if act:
             commit = graph.edges[act - 1]
-            then = pol.actions(commit.target, 0)[0] if 0 in pol.runs.get(commit.target, {}) else 0
+            then = pol.action(commit.target, 0, 0)
             also = f", and use '{graph.edges[then - 1].right}' at once" if then else ""
             return f"invest now ({commit.right}){also}"
         return "wait: keep the right to invest, do not commit today"
@@ -580,28 +676,39 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     hi = grid.log_v0 + 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
     values = np.exp(np.linspace(lo, hi, n_values))
     lv = np.log(values)
-    for s, runs in pol.runs.items():
-        codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
+    for s, runs in pol.moves.items():
+        codes_used = [0] + sorted({c for st in runs.values() for _, _, c in st})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
             (graph.edges[c - 1].right if graph.edges[c - 1].action != Action.SWITCH
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}
         codes = np.full((n_values, len(steps)), -1, dtype=np.int16)
-        for col, i in enumerate(steps):
-            i = int(i)
-            if i not in runs:
-                continue
-            v = grid.nodes_ex(i)
-            if not np.all(v > 0):
-                continue
-            logs = np.log(v)
+        cols = [(col, int(i)) for col, i in enumerate(steps.tolist()) if int(i) in runs]
+        if grid.up > grid.down:      # node values grow with j: all positive iff the lowest is
+            ends = [grid.nodes_ex_at(i, (0, i)) for _, i in cols]
+            cols = [c for c, (v0, _) in zip(cols, ends) if v0 > 0]
+            ends = np.array([e for e in ends if e[0] > 0]).reshape(-1, 2)
+        else:
+            keep = [np.all(grid.nodes_ex(i) > 0) for _, i in cols]
+            cols = [c for c, k in zip(cols, keep) if k]
+            ends = np.array([grid.nodes_ex_at(i, (0, i)) for _, i in cols]).reshape(-1, 2)
+        if cols:
+            logs = np.log(ends)          # (elementwise: the same as logs of all of v)
             step = math.log(grid.up / grid.down)
-            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_values, int)
-            inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
-            act = pol.actions(s, i)
-            mapped = np.vectorize(lookup.get)(act) if act.size else act
-            codes[inside, col] = np.asarray(mapped)[j[inside]]
+            at = np.array([i for _, i in cols])
+            j = np.where(at > 0, np.rint((lv[:, None] - logs[None, :, 0]) / step), 0).astype(int)
+            inside = ((j >= 0) & (j <= at) & (lv[:, None] >= logs[:, 0] - step / 2)
+                      & (lv[:, None] <= logs[:, 1] + step / 2))
+            block = np.where(inside, 0, -1).astype(np.int16)
+            width = max(len(runs[i]) for _, i in cols)
+            for r in range(width):               # the r-th run of each date (if any)
+                a, b, c = (np.array(x) for x in zip(*[
+                    runs[i][r] if r < len(runs[i]) else (0, 0, 0) for _, i in cols]))
+                hit = inside & (j >= a) & (j < b)
+                block[hit] = np.broadcast_to(np.array([lookup.get(x, 0) for x in c.tolist()],
+                                                      dtype=np.int16), hit.shape)[hit]
+            codes[:, [col for col, _ in cols]] = block
         maps.append(DecisionMap(state=graph.states[s].label, actions=tuple(labels),
                                 times=grid.times[steps], values=values, codes=codes))
     return tuple(maps)
@@ -620,25 +727,35 @@ def _fan(grid: Grid, steps):
     mean_rw = np.empty(len(steps))
     mean_rn = np.empty(len(steps))
     cell = math.log(grid.up / grid.down)          # log spacing of the nodes at one step
+    growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
+    levels = np.array([q / 100.0 for q in PERCENTILES])
+    if 0.0 < p < 1.0:                             # k * log(p), k * log(1 - p) for k = 0..N
+        ups = np.arange(N + 1) * math.log(p)
+        downs = np.arange(N + 1) * math.log(1 - p)
+    at = np.empty((len(steps), 3, len(levels)))   # value, mass and cdf at each percentile's node
     for col, i in enumerate(steps):
         i = int(i)
         v = grid.nodes_ex(i)
-        j = np.arange(i + 1)
-        if 0.0 < p < 1.0:
-            logpmf = logfact[i] - logfact[j] - logfact[i - j] + j * math.log(p) + (i - j) * math.log(1 - p)
+        if 0.0 < p < 1.0:   # log C(i, j) + j log p + (i - j) log(1 - p), j = 0..i
+            logpmf = logfact[i] - logfact[:i + 1] - logfact[i::-1] + ups[:i + 1] + downs[i::-1]
             pmf = np.exp(logpmf)
         else:
             pmf = np.zeros(i + 1)
             pmf[i if p >= 1.0 else 0] = 1.0
         cdf = np.cumsum(pmf)
-        for q in PERCENTILES:
-            k = min(i, int(np.searchsorted(cdf, q / 100.0)))
-            fan[q][col] = v[k]
-            if i > 0 and v[k] > 0 and pmf[k] > 0:   # node mass spread over its log cell
-                w = min(1.0, max(0.0, (q / 100.0 - (cdf[k] - pmf[k])) / pmf[k]))
-                fan[q][col] = v[k] * math.exp((w - 0.5) * cell)
+        ks = np.minimum(i, np.searchsorted(cdf, levels))
+        row = at[col]
+        row[0], row[1], row[2] = v[ks], pmf[ks], cdf[ks]
         mean_rw[col] = float(pmf @ v)
-        growth = grid.probability * grid.up + (1 - grid.probability) * grid.down
         mean_rn[col] = math.exp(grid.log_v0 + grid.log_carry[i] + i * math.log(growth)) * (
             grid.ex_fraction(i))
+    vk, pk, ck = at[:, 0], at[:, 1], at[:, 2]
+    spread = (np.asarray(steps)[:, None] > 0) & (vk > 0) & (pk > 0)   # mass over its log cell
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.minimum(1.0, np.maximum(0.0, (levels - (ck - pk)) / pk))
+    shifts = ((w - 0.5) * cell).tolist()
+    values = vk.tolist()
+    for n, (row, keep) in enumerate(zip(values, spread.tolist())):
+        for m, q in enumerate(PERCENTILES):
+            fan[q][n] = row[m] * math.exp(shifts[n][m]) if keep[m] else row[m]
     return grid.times[steps], fan, mean_rw, mean_rn

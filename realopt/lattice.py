@@ -7,7 +7,8 @@ Node (i, j) (step i, j up-moves) carries the base project value just before that
 V = V0 * C_i * u^j * d^(i-j), C_i the product of (1 - delta) over cash-flow dates before step i.
 
 Backward induction holds one array per state and time slice (shape: states x nodes); the policy is
-kept as run-length codes per state and step (see ``Policy``), never a full tree of values.
+kept as the runs of nodes where a right is used, per state and step (see ``Policy``), never
+a full tree of values.
 
 The project ends at its last cash-flow date (cash-flow forms): at that date the year's flow is paid
 first, then the decisions are taken, then the terminal value is paid to the state chosen (a sale
@@ -79,18 +80,33 @@ class Grid:
         """(u/d)^j for j = 0..steps (the grid refuses trees wider than float range)."""
         return np.exp(np.arange(self.steps + 1) * math.log(self.up / self.down))
 
+    @cached_property
+    def _heads(self) -> list:
+        """Project value at node (i, 0) of each step i (the lowest node), before the flow."""
+        base = (self.log_v0 + self.log_carry) + np.arange(self.steps + 1) * math.log(self.down)
+        return [math.exp(max(x, -_LOG_LIMIT)) for x in base.tolist()]
+
     def nodes(self, i: int) -> np.ndarray:
         """Project value at the nodes of step i, before that date's cash flow (cum-flow)."""
-        base = self.log_v0 + self.log_carry[i] + i * math.log(self.down)
-        return math.exp(max(base, -_LOG_LIMIT)) * self._powers[:i + 1]
+        return self._heads[i] * self._powers[:i + 1]
 
     def nodes_ex(self, i: int) -> np.ndarray:
         """Project value at step i after that date's cash flow (the value decisions look at; at
         the last cash-flow date, the terminal value still to be paid)."""
         return self.nodes(i) * self.ex_fraction(i)
 
+    @cached_property
+    def _power_list(self) -> list:
+        return self._powers.tolist()
+
+    def nodes_ex_at(self, i: int, js) -> list[float]:
+        """``nodes_ex(i)[j]`` for each j in ``js`` (the same floating point values, computed
+        for those nodes only)."""
+        head, f, powers = self._heads[i], self.ex_fraction(i), self._power_list
+        return [head * powers[j] * f for j in js]
+
     def memory_bytes(self, states: int) -> int:
-        """Rough peak memory of one solve: a few slices per state plus the run-length policy."""
+        """Rough peak memory of one solve: a few slices per state plus the recorded policy."""
         return int(8 * 6 * states * (self.steps + 1) + 200 * states * (self.steps + 1))
 
 
@@ -284,19 +300,29 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
 
 @dataclass
 class Policy:
-    """Optimal action per node, run-length coded: ``runs[state][step] = (starts, codes)`` where
-    node indices starts[k] .. starts[k+1]-1 take action codes[k] (0 = carry on, e+1 = edge e).
-    Steps where the state has no choice are absent."""
+    """Optimal action per node. ``moves[state][step]`` lists the runs of nodes where a right is
+    used, ``((first, stop, code), ...)`` in node order: nodes first .. stop-1 take action code
+    (edge id + 1); every other node carries on (code 0). Steps where the state has no choice
+    are absent (a step where it has a choice and carries on everywhere holds ``()``)."""
 
-    runs: dict = field(default_factory=dict)
+    moves: dict = field(default_factory=dict)
     # (state, step, edge) -> (first, last node of its exercise region, gains over carrying on at
     # nodes first-2, first-1, first, last, last+1, last+2; None outside the slice)
     gains: dict = field(default_factory=dict)
 
     def actions(self, state: int, step: int) -> np.ndarray:
-        starts, codes = self.runs.get(state, {}).get(step, (np.array([0]), np.array([0])))
-        lengths = np.diff(np.append(starts, step + 1))
-        return np.repeat(codes, lengths)
+        """Action code of every node of ``step`` (0 where the state has no choice)."""
+        out = np.zeros(step + 1, dtype=np.int16)
+        for a, b, code in self.moves.get(state, {}).get(step, ()):
+            out[a:b] = code
+        return out
+
+    def action(self, state: int, step: int, node: int) -> int:
+        """Action code at one node (0: carry on, or no choice at that step)."""
+        for a, b, code in self.moves.get(state, {}).get(step, ()):
+            if a <= node < b:
+                return code
+        return 0
 
 
 @dataclass
@@ -319,29 +345,134 @@ def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
         amounts = e.sign * np.broadcast_to(np.asarray(e.amount.at(times), float), times.shape)
         tgt = rows.get(e.target, -1)
         phase = 0 if graph.states[e.source].invested else 1
-        for i in np.flatnonzero(mask):
-            per_step[i][phase].append((rows[e.source], tgt, float(amounts[i]), e_id))
+        src = rows[e.source]
+        for i, amount in zip(np.flatnonzero(mask).tolist(), amounts[mask].tolist()):
+            per_step[i][phase].append((src, tgt, amount, e_id))
     return per_step
 
 
+def _gains_around(lo: int, hi: int, cand, carry) -> tuple:
+    """(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside the slice; gain =
+    cand - carry (cand: a number or an array over the slice's nodes)."""
+    near, far = slice(max(lo - 2, 0), lo + 1), slice(hi, hi + 3)
+    if isinstance(cand, np.ndarray):
+        below, above = (cand[near] - carry[near]).tolist(), (cand[far] - carry[far]).tolist()
+    else:
+        below, above = (cand - carry[near]).tolist(), (cand - carry[far]).tolist()
+    return (lo, hi, *([None] * (3 - len(below)) + below), *(above + [None] * (3 - len(above))))
+
+
 def _record(policy, i, edges, cands, act, H, live):
-    """Store the run-length codes of each deciding state and, for each edge, the gain over
-    carrying on (cand - H) at the nodes either side of its exercise region (for thresholds)."""
+    """Store the runs of each deciding state and, for each edge, the gain over carrying on
+    (cand - H) at the nodes either side of its exercise region (for thresholds)."""
+    span = {}
     for src in {e[0] for e in edges}:
         codes = act[src]
-        starts = np.concatenate([[0], np.flatnonzero(np.diff(codes)) + 1])
-        policy.runs.setdefault(live[src], {})[i] = (starts, codes[starts].copy())
+        starts = [0] + (np.flatnonzero(codes[1:] != codes[:-1]) + 1).tolist()
+        stops = starts[1:] + [i + 1]
+        runs = tuple((a, b, c) for a, b, c in zip(starts, stops, codes[starts].tolist()) if c)
+        policy.moves.setdefault(live[src], {})[i] = runs
+        for a, b, c in runs:
+            lo, hi = span.get((src, c), (a, b - 1))
+            span[(src, c)] = (min(lo, a), b - 1)
     for (src, _, _, e_id), cand in zip(edges, cands):
-        idx = np.flatnonzero(act[src] == e_id + 1)
-        if idx.size == 0:
+        region = span.get((src, e_id + 1))
+        if region is None:
             continue
-        lo, hi = int(idx[0]), int(idx[-1])
-        gain = np.broadcast_to(cand - H[src], H[src].shape)
+        policy.gains[(live[src], i, e_id)] = _gains_around(region[0], region[1], cand, H[src])
 
-        def at(j):
-            return float(gain[j]) if 0 <= j <= i else None
-        policy.gains[(live[src], i, e_id)] = (lo, hi, at(lo - 2), at(lo - 1), at(lo),
-                                             at(hi), at(hi + 1), at(hi + 2))
+
+def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_only):
+    """:func:`solve` for one live state whose every edge ends the project (abandonment): the
+    same arithmetic on 1-d slices. At each step the first edge offering the largest amount is
+    used where the carry-on value is below that amount (one band of low nodes when the value
+    grows with the project value; several bands are recorded as such).
+
+    When every term added to a slice grows with the node (non-negative scale and flows, node
+    values growing with j), rounding keeps each slice non-decreasing in j, so the nodes below
+    the amount are found by binary search instead of a comparison over the slice."""
+    N = grid.steps
+    p = grid.probability
+    a, b = grid.discount * (1.0 - p), grid.discount * p
+    state = graph.states[live[0]]
+    scale, fixed = np.float64(state.scale), np.float64(state.fixed)
+    heads, powers = grid._heads, grid._powers
+    delta = grid.delta.tolist()
+    late = grid.late.tolist() if grid.late is not None else [0.0] * (N + 1)
+    weights = grid.fixed_weight.tolist()
+    shares = [d - t if d != 0.0 else (grid.yield_flow if i > 0 else 0.0)
+              for i, (d, t) in enumerate(zip(delta, late))]
+    monotone = bool(scale == 0.0 or (
+        scale > 0.0 and 1.0 - delta[N] >= 0.0 and min(late) >= 0.0 and min(shares) >= 0.0
+        and np.all(powers[1:] >= powers[:-1])))
+    bufs = (np.empty(N + 1), np.empty(N + 1))
+    tmp = np.empty(N + 1)
+    better = np.empty(N + 1, dtype=bool)
+    moves = policy.moves.setdefault(live[0], {}) if policy is not None else None
+    gains = policy.gains if policy is not None else None
+    X = bufs[0]
+    np.multiply(scale, grid.nodes(N) * (1.0 - grid.delta[N]), out=X)
+    X += fixed * grid.fixed_beyond
+    for i in range(N, -1, -1):
+        if i < N:
+            H = bufs[(N - i) & 1][:i + 1]
+            np.multiply(X[1:], b, out=H)
+            t = tmp[:i + 1]
+            np.multiply(X[:-1], a, out=t)
+            H += t
+        else:
+            H = X
+        if late[i]:                                # the terminal value, paid after decisions
+            H += scale * (grid.nodes(i) * late[i])
+        edges = per_step[i][0]
+        if edges:
+            best, e_best = edges[0][2], edges[0][3]
+            for _, _, amount, e_id in edges[1:]:
+                if amount > best:
+                    best, e_best = amount, e_id
+            code = e_best + 1
+            if moves is None or (today_only and i):
+                np.maximum(H, best, out=H)
+            elif monotone:
+                k = int(H.searchsorted(best))          # H[j] < best exactly for j < k
+                if k:
+                    moves[i] = ((0, k, code),)
+                    above = H[k - 1:k + 2].tolist()
+                    gains[(live[0], i, e_best)] = (0, k - 1, None, None, best - float(H[0]), *(
+                        [best - x for x in above] + [None, None])[:3])
+                    H[:k] = best
+                else:
+                    moves[i] = ()
+            else:
+                bt = better[:i + 1]
+                np.less(H, best, out=bt)
+                k = int(np.count_nonzero(bt))
+                if not k:
+                    moves[i] = ()
+                else:
+                    lo = int(bt.argmax())
+                    hi = lo + k - 1
+                    if hi <= i and np.count_nonzero(bt[lo:hi + 1]) == k:
+                        moves[i] = ((lo, hi + 1, code),)
+                    else:                     # several bands (carry-on not monotone in V)
+                        hi = i - int(bt[::-1].argmax())
+                        starts = [0] + (np.flatnonzero(bt[1:] != bt[:-1]) + 1).tolist()
+                        stops = starts[1:] + [i + 1]
+                        moves[i] = tuple((s, e, code) for s, e, inside in
+                                         zip(starts, stops, bt[starts].tolist()) if inside)
+                    gains[(live[0], i, e_best)] = _gains_around(lo, hi, best, H)
+                    np.copyto(H, best, where=bt)
+        share = shares[i]
+        if share:
+            flow = np.multiply(powers[:i + 1], heads[i], out=tmp[:i + 1])
+            flow *= share * scale
+            H += flow
+        if fixed and weights[i]:
+            H += fixed * weights[i]
+        X = H
+    values = np.zeros(len(graph.states))
+    values[live[0]] = X[0]
+    return Solution(values=values, policy=policy, grid=grid, graph=graph)
 
 
 def solve(grid: Grid, graph: StateGraph, record: bool = False,
@@ -369,8 +500,13 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     policy = Policy() if record else None
 
     S = len(live)
+    if S == 1 and all(e[1] < 0 for es in per_step for e in es[0] + es[1]):
+        return _solve_alone(grid, graph, per_step, live, policy, today_only)
     bufs = (np.empty((S, N + 1)), np.empty((S, N + 1)))   # two slices, swapped each step
     tmp = np.empty((S, N + 1))
+    delta = grid.delta.tolist()
+    lates = grid.late.tolist() if grid.late is not None else [0.0] * (N + 1)
+    weights = grid.fixed_weight.tolist()
     X = bufs[0]
     np.multiply(scales, (grid.nodes(N) * (1.0 - grid.delta[N]))[None, :], out=X)
     X += fixed * grid.fixed_beyond
@@ -386,7 +522,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
             H += t
         else:
             H = X
-        late = grid.late_share(i)
+        late = lates[i]
         if late:                                   # the terminal value, paid after decisions
             H += scales * (grid.nodes(i) * late)[None, :]
         if i == 0:
@@ -414,8 +550,7 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                         np.maximum(H[src], cand, out=H[src])
             if recording:
                 _record(policy, i, every, every_cand, act, carry, live)
-        share = grid.delta[i] - late if grid.delta[i] != 0.0 else (
-            grid.yield_flow if i > 0 else 0.0)
+        share = delta[i] - late if delta[i] != 0.0 else (grid.yield_flow if i > 0 else 0.0)
         if share:
             flow = grid.nodes(i)
             if one_state:
@@ -423,9 +558,11 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
                 H[0] += flow
             else:
                 flow *= share
-                H += scales * flow[None, :]
-        if has_fixed and grid.fixed_weight[i]:
-            H += fixed * grid.fixed_weight[i]
+                t = tmp[:, :i + 1]
+                np.multiply(scales, flow[None, :], out=t)
+                H += t
+        if has_fixed and weights[i]:
+            H += fixed * weights[i]
         X = H
     values = np.zeros(len(graph.states))
     values[live] = X[:, 0]
@@ -434,54 +571,125 @@ def solve(grid: Grid, graph: StateGraph, record: bool = False,
     return Solution(values=values, policy=policy, grid=grid, graph=graph, carry=carry)
 
 
-def occupancy(sol: Solution, p: float, absorb=()):
+def occupancy(sol: Solution, p, absorb=(), at=None):
     """Forward pass under up-probability ``p`` with the recorded policy.
 
-    Returns (state_prob, exercised): state_prob[i, k] = chance of being in state k after the
-    decisions at step i; exercised[i, e] = chance that edge e is taken at step i. Commitments
-    move first, then the invested states' decisions (as in :func:`solve`). Mass taking an edge
-    in ``absorb`` is counted and then dropped (first uses only: e.g. a switch's first move).
+    ``p`` is one probability or a sequence of them (one pass for all: the measures are rows of
+    one array). Returns (state_prob, exercised): state_prob[m, n, k] = chance under measure m
+    of being in state k after the decisions at step ``at[n]`` (every step if ``at`` is None);
+    exercised[m, i, e] = chance that edge e is taken at step i. For a single ``p`` the leading
+    axis is left out. Commitments move first, then the invested states' decisions (as in
+    :func:`solve`). Mass taking an edge in ``absorb`` is counted and then dropped (first uses
+    only: e.g. a switch's first move).
     """
     graph, grid, pol = sol.graph, sol.grid, sol.policy
-    S, E, N = len(graph.states), len(graph.edges), grid.steps
-    state_prob = np.zeros((N + 1, S))
-    exercised = np.zeros((N + 1, E))
-    bufs = (np.zeros((S, N + 1)), np.zeros((S, N + 1)))
-    pi = bufs[0][:, :1]
-    pi[graph.initial, 0] = 1.0
-    absorbed = np.zeros(S)
+    single = np.ndim(p) == 0
+    ps = np.atleast_1d(np.asarray(p, dtype=float))
+    M, S, E, N = len(ps), len(graph.states), len(graph.edges), grid.steps
+    steps_at = np.arange(N + 1) if at is None else np.asarray(at, dtype=int)
+    row_of = {int(i): n for n, i in enumerate(steps_at)}
+    state_prob = np.zeros((M, len(steps_at), S))
+    exercised = np.zeros((M, N + 1, E))
+    up = ps[:, None, None]
+    down = (1.0 - ps)[:, None, None]
+    bufs = (np.zeros((M, S, N + 1)), np.zeros((M, S, N + 1)))
+    pi = bufs[0][..., :1]
+    pi[:, graph.initial, 0] = 1.0
+    absorbed = np.zeros((M, S))
     targets = [e.target for e in graph.edges]
     gone = [graph.states[t].abandoned or k in absorb for k, t in enumerate(targets)]
-    phases = ([s for s in pol.runs if not graph.states[s].invested],
-              [s for s in pol.runs if graph.states[s].invested])
+    if len(pol.moves) == 1 and all(gone[code - 1] for steps in pol.moves.values()
+                                   for runs in steps.values() for _, _, code in runs):
+        _occupancy_alone(pol, next(iter(pol.moves)), ps, steps_at, targets, state_prob,
+                         exercised)
+        return (state_prob[0], exercised[0]) if single else (state_prob, exercised)
+    phases = ([(s, pol.moves[s]) for s in pol.moves if not graph.states[s].invested],
+              [(s, pol.moves[s]) for s in pol.moves if graph.states[s].invested])
     for i in range(N + 1):
         if i > 0:
-            nxt = bufs[i % 2][:, :i + 1]
-            np.multiply(pi, 1.0 - p, out=nxt[:, :i])
-            nxt[:, i] = 0.0
-            nxt[:, 1:] += p * pi
+            nxt = bufs[i % 2][..., :i + 1]
+            np.multiply(pi, down, out=nxt[..., :i])
+            nxt[..., i] = 0.0
+            nxt[..., 1:] += up * pi
             pi = nxt
         for sources in phases:
             moves = []
-            for s in sources:
-                steps = pol.runs[s]
-                if i not in steps:
-                    continue
-                starts, codes = steps[i]
-                ends = np.append(starts[1:], i + 1)
-                for a, b, code in zip(starts.tolist(), ends.tolist(), codes.tolist()):
-                    if code:
-                        moves.append((s, code - 1, a, b, pi[s, a:b].copy()))
+            for s, steps in sources:
+                for a, b, code in steps.get(i, ()):
+                    moves.append((s, code - 1, a, b, pi[:, s, a:b].copy()))
             for s, e_id, a, b, mass in moves:      # all moves read the pre-decision masses
-                pi[s, a:b] -= mass
-                total = mass.sum()
+                pi[:, s, a:b] -= mass
+                total = mass.sum(axis=1)
                 if gone[e_id]:
-                    absorbed[targets[e_id]] += total
+                    absorbed[:, targets[e_id]] += total
                 else:
-                    pi[targets[e_id], a:b] += mass
-                exercised[i, e_id] += total
-        state_prob[i] = pi.sum(axis=1) + absorbed
+                    pi[:, targets[e_id], a:b] += mass
+                exercised[:, i, e_id] += total
+        n = row_of.get(i)
+        if n is not None:
+            state_prob[:, n] = pi.sum(axis=2) + absorbed
+    if single:
+        return state_prob[0], exercised[0]
     return state_prob, exercised
+
+
+_NEGLIGIBLE = 1e-300      # path mass below this is left out (it never shows in any sum)
+
+
+def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
+    """:func:`occupancy` when ``state`` (the initial state) is the only one that decides and
+    every move out of it ends the path (abandonment): each measure's mass is followed only
+    over the window of nodes where it is not negligible (above the exercise band, a few dozen
+    standard deviations wide), one correlation (the two-point stencil) per step. Fills the
+    arrays."""
+    N = exercised.shape[1] - 1
+    moves = pol.moves[state]
+    want = {int(i): n for n, i in enumerate(steps_at)}
+    correlate, cut = np.correlate, _NEGLIGIBLE
+    for m, p in enumerate(ps.tolist()):
+        kernel = np.array([p, 1.0 - p])    # node j keeps (1 - p) of its mass, j+1 gains p
+        pi, lo = np.ones(1), 0             # the window: mass at nodes lo .. lo + pi.size - 1
+        left = []                          # (step, edge, mass leaving there)
+        alive = {}
+        for i in range(N + 1):
+            if i and pi.size:
+                pi = correlate(pi, kernel, "full")     # new[j] = q old[j] + p old[j-1]
+                if pi[0] < cut:
+                    k = 1
+                    while k < pi.size and pi[k] < cut:
+                        k += 1
+                    pi = pi[k:]
+                    lo += k
+                if pi.size and pi[-1] < cut:
+                    k = pi.size - 1
+                    while k > 0 and pi[k - 1] < cut:
+                        k -= 1
+                    pi = pi[:k]
+            runs = moves.get(i)
+            if runs and pi.size:
+                for a, b, code in runs:
+                    a, b = max(a, lo) - lo, min(b, lo + pi.size) - lo
+                    if a >= b:
+                        continue
+                    piece = pi[a:b]
+                    left.append((i, code - 1, float(piece.sum()) if b - a > 8
+                                 else sum(piece.tolist())))
+                    if a == 0:
+                        pi = pi[b:]
+                        lo += b
+                    elif b == pi.size:
+                        pi = pi[:a]
+                    else:
+                        pi = pi.copy()
+                        pi[a:b] = 0.0
+            if i in want:
+                alive[i] = float(pi.sum())
+        for i, e_id, mass in left:
+            exercised[m, i, e_id] += mass
+        gone = np.cumsum(exercised[m], axis=0)[list(want)]      # by edge, at steps_at
+        for e_id, t in enumerate(targets):
+            state_prob[m, :, t] += gone[:, e_id]
+        state_prob[m, :, state] += [alive[i] for i in want]
 
 
 def plan(project: Project) -> Plan:

@@ -127,9 +127,11 @@ class BaseRight(Right):
         idx = graph.index(used=used, modes=tuple(modes))
         return [] if idx is None else [idx]
 
-    def chance_of_use(self, sol, graph, edge_ids, rn, rw, sample):
+    def chance_of_use(self, sol, graph, edge_ids, occ):
         """(risk-neutral, real-world cumulative chance of use at every step, what it counts,
-        mode shares or None). ``rn``/``rw``: occupancy (states, exercises) of the solution."""
-        rn_use = np.cumsum(rn[1][:, edge_ids].sum(axis=1))
-        rw_use = np.cumsum(rw[1][:, edge_ids].sum(axis=1))
+        mode shares or None). ``occ``: (state_prob at the sampled steps, exercised at every
+        step) of the solution's forward pass (realopt.lattice.occupancy), each with a leading
+        axis of the two measures (risk-neutral, real-world)."""
+        rn_use = np.cumsum(occ[1][0][:, edge_ids].sum(axis=1))
+        rw_use = np.cumsum(occ[1][1][:, edge_ids].sum(axis=1))
         return rn_use, rw_use, "chance that the right has been exercised by each date", None

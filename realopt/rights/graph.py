@@ -20,8 +20,7 @@ Usage rules (documented in docs/design.md, section 3, and docs/file-format.md):
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-
-import networkx as nx
+from functools import cached_property
 
 from ..errors import ValuationError
 from ..model import Right, Schedule
@@ -66,7 +65,25 @@ class StateGraph:
     edges: tuple[Edge, ...]
     initial: int
     rights: tuple[Right, ...]
-    graph: nx.DiGraph
+
+    @cached_property
+    def graph(self):
+        """The states and edges as a networkx DiGraph (built on first use: networkx is slow to
+        import and only the outputs need it). Node attributes label, scale, fixed, invested,
+        abandoned; edge attributes rights (names), label, action, amount (text), sign."""
+        import networkx as nx
+
+        g = nx.DiGraph()
+        for k, s in enumerate(self.states):
+            g.add_node(k, label=s.label, scale=s.scale, fixed=s.fixed, invested=s.invested,
+                       abandoned=s.abandoned)
+        for e in self.edges:
+            if g.has_edge(e.source, e.target):
+                g.edges[e.source, e.target]["rights"].append(e.right)
+            else:
+                g.add_edge(e.source, e.target, rights=[e.right], label=e.label,
+                           action=e.action, amount=e.amount.describe(), sign=e.sign)
+        return g
 
     def index(self, *, invested=True, used=frozenset(), modes=None) -> int | None:
         """Index of the state with these attributes (modes default: every switch at its start)."""
@@ -262,17 +279,7 @@ def build_state_graph(rights: tuple[Right, ...], held: tuple[Right, ...] = ()) -
 
     if defer is not None and defer.cost is None:
         raise ValuationError("internal: a defer right's cost must be resolved before the graph")
-    g = nx.DiGraph()
-    for k, s in enumerate(states):
-        g.add_node(k, label=s.label, scale=s.scale, fixed=s.fixed, invested=s.invested,
-                   abandoned=s.abandoned)
-    for e in raw_edges:
-        if g.has_edge(e.source, e.target):
-            g.edges[e.source, e.target]["rights"].append(e.right)
-        else:
-            g.add_edge(e.source, e.target, rights=[e.right], label=e.label, action=e.action,
-                       amount=e.amount.describe(), sign=e.sign)
-    sg = StateGraph(tuple(states), tuple(raw_edges), 0, tuple(rights), g)
+    sg = StateGraph(tuple(states), tuple(raw_edges), 0, tuple(rights))
     check_state_graph(sg)
     return sg
 
@@ -281,14 +288,21 @@ def check_state_graph(sg: StateGraph) -> None:
     """Every state reachable from the initial one, nothing returns to "not yet invested",
     abandonment absorbing. Raises ValuationError (these hold by construction; a failure is a bug
     or an impossible combination of rights)."""
-    g = sg.graph
-    reach = nx.descendants(g, sg.initial) | {sg.initial}
-    if len(reach) != g.number_of_nodes():
+    out = {k: set() for k in range(len(sg.states))}
+    for e in sg.edges:
+        out[e.source].add(e.target)
+    reach, todo = {sg.initial}, [sg.initial]
+    while todo:
+        for t in out[todo.pop()] - reach:
+            reach.add(t)
+            todo.append(t)
+    if len(reach) != len(sg.states):
         raise ValuationError("internal: unreachable states in the rights graph")
+    targets = {e.target for e in sg.edges}
     for k, s in enumerate(sg.states):
-        if not s.invested and g.in_degree(k) > 0:
+        if not s.invested and k in targets:
             raise ValuationError("internal: an edge returns to 'not yet invested'")
-        if s.abandoned and g.out_degree(k) > 0:
+        if s.abandoned and out[k]:
             raise ValuationError("internal: the abandoned state is not absorbing")
 
 

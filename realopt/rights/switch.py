@@ -180,30 +180,28 @@ class Switch(BaseRight):
                 out.append(idx)
         return out
 
-    def chance_of_use(self, sol, graph, edge_ids, rn, rw, sample):
+    def chance_of_use(self, sol, graph, edge_ids, occ):
         """First moves out of the start mode (a forward pass that drops the paths once they
         move), and the share of paths in each mode at each sampled date."""
         from ..lattice import occupancy
 
         grid = sol.grid
-        first = set(edge_ids)
-        rn_use = np.cumsum(occupancy(sol, grid.probability, absorb=first)[1][:, edge_ids].sum(
-            axis=1))
-        rw_use = np.cumsum(occupancy(sol, grid.real_probability, absorb=first)[1][
-            :, edge_ids].sum(axis=1))
+        first = occupancy(sol, (grid.probability, grid.real_probability),
+                          absorb=set(edge_ids), at=())[1]
+        rn_use = np.cumsum(first[0][:, edge_ids].sum(axis=1))
+        rw_use = np.cumsum(first[1][:, edge_ids].sum(axis=1))
         k = [s for s in graph.rights if s.modal].index(self)
         mode_shares = {}
         for m in self.modes:
             cols = [i for i, s in enumerate(graph.states)
                     if not s.abandoned and s.invested and s.modes[k] == m.name]
             mode_shares[m.name] = tuple(
-                tuple(float(min(1.0, max(0.0, x))) for x in occ[0][:, cols].sum(axis=1)[sample])
-                for occ in (rn, rw))
+                tuple(float(min(1.0, max(0.0, x))) for x in prob[:, cols].sum(axis=1))
+                for prob in occ[0])
         measure = (f"chance of having switched out of '{self.start}' at least once by each date "
                    "(never falls); the mode shares are the chance of being in each mode at "
                    "each date (the project invested and not abandoned)")
         return rn_use, rw_use, measure, mode_shares
-
 
 def _mode_name(ld, path, value, known, what):
     from ..project import describe

@@ -3,10 +3,11 @@
     python tests/benchmarks/bench_cli.py [--repeat N]
 
 For each demo project in projects/: ``python -m realopt appraise FILE`` and ``realopt check FILE``
-(the console script, when installed) in a fresh interpreter, best / median / worst of N runs.
-Target (issue 3): ``realopt appraise`` on a demo project under 1.5 s wall time. Also shows a bare
-interpreter start for comparison, the time to import the command line and the engine, and whether
-the run imported matplotlib (it must not) or pandas (it should not: it costs about half a second).
+(the console script, when installed) in a fresh interpreter, best / median / worst of N runs
+after one warm-up run. Target (issue 11): ``realopt appraise`` on every lattice demo project in
+0.5 s wall time or less (median of 5). Also shows a bare interpreter start for comparison, the
+time to import the command line and the engine, and whether the run imported matplotlib (it must
+not), pandas (it should not: about half a second) or networkx (only the outputs need it).
 
 Bytecode caching is switched on for the runs (PYTHONDONTWRITEBYTECODE is dropped), as for an
 installed copy, whose .pyc files pip writes; ``--no-bytecode`` measures the uncached case.
@@ -24,7 +25,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-TARGET = 1.5
+TARGET = 0.5
 
 
 ENV = dict(os.environ)
@@ -68,25 +69,26 @@ def main() -> None:
         rel = demo.relative_to(ROOT)
         best, med, worst = wall([py, "-m", "realopt", "appraise", str(rel)], n)
         worst_median = max(worst_median, med)
-        flag = "ok" if med < TARGET else "SLOW"
+        flag = "ok" if med <= TARGET else "SLOW"
         print(f"{'python -m realopt appraise ' + rel.name:<52}{best:7.3f} {med:7.3f} {worst:7.3f}"
               f"  {flag}")
         if script:
             best, med, worst = wall([script, "appraise", str(rel)], n)
             worst_median = max(worst_median, med)
             print(f"{'realopt appraise ' + rel.name:<52}{best:7.3f} {med:7.3f} {worst:7.3f}"
-                  f"  {'ok' if med < TARGET else 'SLOW'}")
+                  f"  {'ok' if med <= TARGET else 'SLOW'}")
             best, med, worst = wall([script, "check", str(rel)], n)
             print(f"{'realopt check ' + rel.name:<52}{best:7.3f} {med:7.3f} {worst:7.3f}")
     modules = ("import sys; from realopt.cli import main; main(['appraise', "
                "'projects/coating_line.yaml']); "
                "print('matplotlib', any(m.startswith('matplotlib') for m in sys.modules), "
-               "'pandas', 'pandas' in sys.modules, file=sys.stderr)")
+               "'pandas', 'pandas' in sys.modules, 'networkx', 'networkx' in sys.modules, "
+               "file=sys.stderr)")
     r = subprocess.run([py, "-c", modules], cwd=ROOT, capture_output=True, text=True, check=True,
                        env=ENV)
     print("imported during appraise:", r.stderr.strip().splitlines()[-1])
     print(f"slowest median appraise: {worst_median:.3f} s "
-          f"({'meets' if worst_median < TARGET else 'MISSES'} the {TARGET} s target)")
+          f"({'meets' if worst_median <= TARGET else 'MISSES'} the {TARGET} s target)")
 
 
 if __name__ == "__main__":
