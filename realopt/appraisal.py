@@ -459,9 +459,9 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
         rows = [(i, g) for i in at if (g := pol.gains.get((state, i, e_id))) is not None]
         if rows:
             i_ = np.array([i for i, _ in rows])
-            lo = np.array([g[0] for _, g in rows])
-            hi = np.array([g[1] for _, g in rows])
-            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # None -> nan
+            lo = np.array([g.first for _, g in rows])
+            hi = np.array([g.last for _, g in rows])
+            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # the gains; None -> nan
             smooth = np.array([(state, i + 1, e_id) in pol.gains for i, _ in rows])
 
             def value(j, ok):              # nodes_ex(i)[j] where ok, nan elsewhere
