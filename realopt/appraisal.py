@@ -21,7 +21,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from . import CAUTION
+from . import CAUTION, validate
 from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
 from .model import Project
@@ -286,7 +286,11 @@ def _without_gc_pauses(fn):
 
 @_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
-    """Value every right of ``project`` on the lattice; see :class:`Appraisal`."""
+    """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
+
+    A project built in Python is checked against the model's rules first (realopt.validate):
+    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get."""
+    validate.check(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "
@@ -387,7 +391,7 @@ def _primary_states(r, graph: StateGraph) -> list[int]:
     """States from which the rule of right ``r`` is read (asked of its type: the project
     invested, the rights that ``r`` requires used, every switch at its start mode; for a switch
     each mode in turn)."""
-    return r.primary_states(graph)
+    return r.primary_states(graph, requirement_closure(graph.rights, r.name) - {r.name})
 
 
 def graph_right(graph: StateGraph, name: str):
@@ -506,7 +510,10 @@ def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValu
         ids = [k for k in edge_ids if graph.edges[k].source == s]
         thr += _thresholds(sol, s, ids, range(grid.steps + 1))
     # what the chance of use counts is the type's (a switch: first moves out of its start mode)
-    rn_use, rw_use, measure, mode_shares = r.chance_of_use(sol, graph, edge_ids, occ)
+    def first_uses(ids):              # a forward pass that drops the paths once they move
+        return occupancy(sol, (grid.probability, grid.real_probability), absorb=set(ids),
+                         at=())[1]
+    rn_use, rw_use, measure, mode_shares = r.chance_of_use(graph, edge_ids, occ, first_uses)
     side = _side(thr)
     return RightValue(
         name=r.name, type=r.kind, window=tuple(float(x) for x in r.window), exercise=r.exercise,

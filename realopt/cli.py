@@ -388,7 +388,7 @@ def _volatility_text(a) -> str:
 COMMANDS = (
     _register_check,
     _register_appraise,
-    "realopt.outputs.command:register",
+    "realopt.report_command:register",
     "realopt.sweep:register",
     "realopt.portfolio:register",
 )

@@ -56,7 +56,8 @@ from itertools import combinations_with_replacement
 
 import numpy as np
 
-from .errors import ValuationError
+from . import validate
+from .errors import ModelError, Problem, ValuationError
 from .formula import Formula, FormulaError, parse
 from .model import DriverModel, Market, VolatilityEstimate
 
@@ -158,10 +159,7 @@ def correlation_matrix(model: DriverModel) -> tuple[tuple[str, ...], np.ndarray]
             if kinds[n] == "schedule":
                 raise ValuationError(f"correlation names '{n}', a schedule (deterministic) "
                                      "driver; only gbm and mean_reverting drivers are correlated")
-        rho = float(rho)
-        if not (-1.0 <= rho <= 1.0):
-            raise ValuationError(f"correlation of {a} and {b} is {rho:g}; expected a value from "
-                                 "-1 to 1")
+        rho = float(rho)             # in [-1, 1]: realopt.validate (called by _Plan) checks it
         if a == b:
             if rho != 1.0:
                 raise ValuationError(f"correlation of {a} with itself is {rho:g}; it is 1 by "
@@ -173,18 +171,9 @@ def correlation_matrix(model: DriverModel) -> tuple[tuple[str, ...], np.ndarray]
                                  f"{rho:g}); keep one")
         seen[pair] = rho
         m[idx[a], idx[b]] = m[idx[b], idx[a]] = rho
-    if len(names) > 1:
-        vals, vecs = np.linalg.eigh(m)
-        if vals[0] < -1e-10:
-            v = vecs[:, 0]
-            heavy = [names[i] for i in np.argsort(-np.abs(v)) if abs(v[i]) > 0.2][:4]
-            shrink = 1.0 / (1.0 - vals[0])
-            raise ValuationError(
-                f"the correlations between {', '.join(names)} cannot hold together: their "
-                f"matrix is not positive semi-definite (smallest eigenvalue {vals[0]:.4g}, "
-                f"mostly along {', '.join(heavy)}). Fix: weaken the correlations among "
-                f"{', '.join(heavy)}; multiplying every correlation by {shrink:.3f} or less "
-                "makes the set consistent")
+    bad = validate.correlation_problem(names, model.correlation)   # the loader's message too
+    if bad is not None:
+        raise ModelError([Problem("project", None, None, "underlying.correlation", *bad)])
     return names, m
 
 
@@ -200,13 +189,8 @@ class _Plan:
 
     def __init__(self, model: DriverModel):
         self.model = model
+        validate.check(model)        # years, tax rate, drivers, correlations (ModelError)
         first, last = (int(model.years[0]), int(model.years[1]))
-        if not (1 <= first <= last):
-            raise ValuationError(f"underlying.years is [{first}, {last}]; expected [first, last] "
-                                 "with 1 <= first <= last (year 0 is today)")
-        if not (0.0 <= float(model.tax_rate) < 1.0):
-            raise ValuationError(f"underlying.tax_rate is {model.tax_rate:g}; expected a rate "
-                                 "from 0 up to 1 (0.25 for 25%)")
         self.years = np.arange(first, last + 1, dtype=float)   # cash-flow years
         self.horizon = last
         self.tax = float(model.tax_rate)
@@ -214,8 +198,6 @@ class _Plan:
         dup = {n for n in names if names.count(n) > 1}
         if dup:
             raise ValuationError(f"driver '{sorted(dup)[0]}' is defined twice")
-        for d in model.drivers:
-            _check_driver(d)
         self.schedules = {d.name: d for d in model.drivers if d.process == "schedule"}
         self.stochastic = [d for d in model.drivers if d.process != "schedule"]
         self.names, self.corr = correlation_matrix(model)
@@ -322,33 +304,6 @@ class _Plan:
         return out
 
 
-def _check_driver(d) -> None:
-    def fin(x):
-        return isinstance(x, (int, float)) and math.isfinite(x)
-
-    if d.process == "schedule":
-        if d.schedule is None:
-            raise ValuationError(f"driver '{d.name}' is a schedule without values")
-        return
-    if d.process not in ("gbm", "mean_reverting"):
-        raise ValuationError(f"driver '{d.name}': process '{d.process}' is not known; expected "
-                             "gbm, mean_reverting or a schedule")
-    if not (fin(d.start) and d.start > 0):
-        raise ValuationError(f"driver '{d.name}': start is {d.start}; expected today's value, "
-                             "above 0 (the process is in logs)")
-    if not (fin(d.volatility) and d.volatility >= 0):
-        raise ValuationError(f"driver '{d.name}': volatility is {d.volatility}; expected 0 or "
-                             "more (0.25 for 25% a year)")
-    if d.process == "gbm" and not fin(d.drift):
-        raise ValuationError(f"driver '{d.name}': drift is {d.drift}; expected a number")
-    if d.process == "mean_reverting":
-        if not (fin(d.long_run) and d.long_run > 0):
-            raise ValuationError(f"driver '{d.name}': long_run is {d.long_run}; expected the "
-                                 "long-run median, above 0")
-        if not (fin(d.speed) and d.speed >= 0):
-            raise ValuationError(f"driver '{d.name}': speed is {d.speed}; expected 0 or more")
-
-
 def _cholesky_psd(a: np.ndarray) -> np.ndarray:
     """Lower-triangular L with L L^T = a for a positive semi-definite a (zero pivots allowed).
 
@@ -438,12 +393,8 @@ def _run(model, estimate, market, *, conditional: str = "auto",
     plan = _Plan(model)
     simulate = estimate is not None and estimate.method == "simulation"
     settings = estimate if simulate else DEFAULT
+    validate.check(settings)         # paths and seed (ModelError)
     paths, seed = int(settings.paths), int(settings.seed)
-    if paths < 100:
-        raise ValuationError(f"volatility estimate: {paths} paths are too few; use at least 100 "
-                             "(20,000 gives a standard error near 0.5% of the volatility)")
-    if seed < 0:
-        raise ValuationError(f"volatility estimate: seed {seed} must be 0 or more")
     years = plan.years
     disc = np.asarray(market.discount_growth(years), dtype=float)
     later = years[years > 1]

@@ -44,3 +44,17 @@ class ProjectError(RealoptError):
 
 class ValuationError(RealoptError):
     """The project is well formed but cannot be valued as specified (message says what to change)."""
+
+
+class ModelError(ProjectError, ValuationError):
+    """A project built in Python breaks a rule of the model (realopt.validate): the problems a file
+    would get, without a file position. Both a ProjectError and a ValuationError."""
+
+    def __init__(self, problems):
+        super().__init__(problems)
+        n = len(self.problems)
+        head = f"{n} problem{'s' if n != 1 else ''} in the project:"
+        self.args = ("\n".join([head] + [f"  - {p}" for p in self.problems]),)
+
+    def __str__(self) -> str:
+        return self.args[0]

@@ -12,7 +12,6 @@ code), not outside figures; the facts they rest on are stated beside them.
 """
 from __future__ import annotations
 
-import math
 import textwrap
 from dataclasses import replace
 from pathlib import Path
@@ -323,17 +322,18 @@ def test_a_project_changed_after_loading_is_rebuilt_from_its_values():
 
 def test_a_project_no_file_can_state_gets_no_sensitivity():
     """A project built in Python with a value the loader refuses (an expansion of -50%) has no
-    exact copy through the loader: no rows, no break-evens, no convergence, and a note."""
+    exact copy through the loader, and appraise refuses it with the loader's message (the
+    model's rules in realopt.validate), so no sensitivity is ever computed from it."""
+    from realopt.errors import ModelError
+
     p = generated("cash_flows")
     odd = replace(p, rights=(Defer(name="Wait", window=(0.0, 1.0)),
                              Expand(name="Grow", window=(0.5, 2.0), scale=-0.5)))
     copier = S.Copier(odd)
     assert copier.route is None and copier.problem
-    a = realopt.appraise(odd)
-    rows, notes = S.tornado(a, MOVES)
-    assert rows == [] and "No sensitivity is computed" in notes[0]
-    assert S.breakevens(a) == [] and S.convergence(a) is None
-    assert math.isfinite(a.expanded_npv)
+    with pytest.raises(ModelError, match=r"rights\[1\]\.scale: found -0.5; expected the added "
+                       "fraction of the current scale, above 0"):
+        realopt.appraise(odd)
 
 
 

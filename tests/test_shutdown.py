@@ -128,3 +128,22 @@ def test_bad_shutdown_keys_are_located():
     text = str(err.value)
     assert "bad.yaml:10:5: rights[0].cost: found no value" in text     # line 10: the right
     assert "modes belongs to switch rights; this is a shutdown right" in text
+
+
+def test_a_python_built_shutdown_gets_the_files_messages():
+    """The bounds are declared once in the type module (FIELD_RULES, NONNEG_SCHEDULES) and read
+    by realopt.validate for files and Python-built projects alike."""
+    from realopt.model import Schedule
+    from realopt.rights import example_project
+
+    bad = Shutdown(name="m", window=(0.0, 3.0), cost=Schedule.constant(-1.0), maintenance=-2.0)
+    with pytest.raises(realopt.RealoptError) as err:
+        realopt.appraise(example_project(bad))
+    text = str(err.value)
+    assert ("rights[0].maintenance: found -2; expected the yearly maintenance cost while shut, "
+            "0 or more. Fix: a cost is written positive") in text
+    assert "rights[0].cost: found -1; expected the cost paid on each shutdown of 0 or more" in text
+    with pytest.raises(realopt.ProjectError) as err:
+        loads(HEAD + SHUTDOWN.replace("maintenance: 0.6", "maintenance: -2"), source="f.yaml")
+    assert ("rights[0].maintenance: found -2; expected the yearly maintenance cost while shut, "
+            "0 or more. Fix: a cost is written positive") in str(err.value)

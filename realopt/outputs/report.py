@@ -205,7 +205,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> 
         with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
             for stem, df in tables.items():
                 df.to_excel(xw, sheet_name=stem[:31], index=False)
-    from ..cli import to_json
+    from ..jsontext import to_json
 
     (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
     (tmp / "report.html").write_text(render_html(b), encoding="utf-8")

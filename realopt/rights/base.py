@@ -50,6 +50,12 @@ class BaseRight(Right):
     """Default hooks (a one-shot right with no money and no scale)."""
 
     # ---- file --------------------------------------------------------------------------
+    # bounds of the type's own fields, read by realopt.validate for files and Python-built
+    # projects alike: field -> keyword arguments of validate.Rule; and the money schedules that
+    # must not go below 0: field -> what it is (the loader's words)
+    FIELD_RULES: ClassVar[dict] = {}
+    NONNEG_SCHEDULES: ClassVar[dict] = {}
+
     @classmethod
     def parse(cls, ld, path, item) -> dict | None:
         return {}
@@ -107,12 +113,10 @@ class BaseRight(Right):
         return {}
 
     # ---- results -----------------------------------------------------------------------
-    def primary_states(self, graph) -> list[int]:
+    def primary_states(self, graph, closure) -> list[int]:
         """States from which the rule is read: the project invested, the rights this one
-        requires used, every modal right at its start mode."""
-        from .graph import requirement_closure
-
-        closure = requirement_closure(graph.rights, self.name) - {self.name}
+        requires used (``closure``: their names, realopt.rights.requirement_closure less this
+        right), every modal right at its start mode."""
         by_name = {r.name: r for r in graph.rights}
         used = frozenset(n for n in closure if by_name[n].one_shot)
         modals = [s for s in graph.rights if s.modal]
@@ -127,11 +131,12 @@ class BaseRight(Right):
         idx = graph.index(used=used, modes=tuple(modes))
         return [] if idx is None else [idx]
 
-    def chance_of_use(self, sol, graph, edge_ids, occ):
+    def chance_of_use(self, graph, edge_ids, occ, first_uses):
         """(risk-neutral, real-world cumulative chance of use at every step, what it counts,
         mode shares or None). ``occ``: (state_prob at the sampled steps, exercised at every
         step) of the solution's forward pass (realopt.lattice.occupancy), each with a leading
-        axis of the two measures (risk-neutral, real-world)."""
+        axis of the two measures (risk-neutral, real-world); ``first_uses(edge_ids)``: the
+        exercised array of a pass that drops the paths once they take one of those edges."""
         rn_use = np.cumsum(occ[1][0][:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(occ[1][1][:, edge_ids].sum(axis=1))
         return rn_use, rw_use, "chance that the right has been exercised by each date", None

@@ -22,15 +22,17 @@ class Contract(BaseRight):
     KEYS: ClassVar[tuple[str, ...]] = ("scale", "savings")
     one_shot: ClassVar[bool] = True
     proceeds: ClassVar[str | None] = "savings"
+    FIELD_RULES: ClassVar[dict] = {"scale": dict(
+        expected="the fraction of the current scale given up, above 0 and below 1 (0.4 = 40% "
+        "smaller)", gt=0.0, lt=1.0, fix="to close entirely use an abandon right")}
 
     def terminal_share(self):
         return f"replaces its share ({self.scale:.0%}) of the terminal value"
 
     @classmethod
     def parse(cls, ld, path, item):
-        return parse_scaled(ld, path, item, "contract", "savings", "the one-off savings on "
-                            "contracting", {"gt": 0.0, "lt": 1.0}, "the fraction of the current "
-                            "scale given up, above 0 and below 1 (0.4 = 40% smaller)")
+        return parse_scaled(ld, path, item, cls, "savings", "the one-off savings on "
+                            "contracting")
 
     def raw(self):
         return {"scale": self.scale, "savings": schedule_raw(self.savings)}

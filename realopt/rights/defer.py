@@ -18,12 +18,13 @@ class Defer(BaseRight):
     kind: ClassVar[str] = "defer"
     KEYS: ClassVar[tuple[str, ...]] = ("cost",)
     commits: ClassVar[bool] = True
+    NONNEG_SCHEDULES: ClassVar[dict] = {"cost": "the cost paid on committing"}
 
     @classmethod
     def parse(cls, ld, path, item):
         if item.get("cost") is None:
             return {"cost": None}
-        cost = ld.schedule(path + ("cost",), item["cost"], "the cost paid on committing",
+        cost = ld.schedule(path + ("cost",), item["cost"], cls.NONNEG_SCHEDULES["cost"],
                            nonneg=True)
         return {"cost": cost} if cost is not None else None
 
@@ -56,5 +57,5 @@ class Defer(BaseRight):
     def cost_overrides(self, at, k):
         return {} if self.cost is None else {f"{at}.cost": moved(self.cost, k)}
 
-    def primary_states(self, graph):
+    def primary_states(self, graph, closure):
         return [graph.initial]

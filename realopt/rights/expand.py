@@ -9,14 +9,14 @@ from .base import Action, BaseRight
 from .raw import moved, schedule_raw
 
 
-def parse_scaled(ld, path, item, kind, money, money_what, bounds, scale_what, nonneg=False):
-    """``scale`` and one money schedule (expand: cost; contract: savings)."""
+def parse_scaled(ld, path, item, cls, money, money_what, nonneg=False):
+    """``scale`` (bounds and wording: ``cls.FIELD_RULES``) and one money schedule (expand:
+    cost; contract: savings)."""
     scale = None
     if "scale" not in item:
-        ld.missing(path + ("scale",), scale_what)
+        ld.missing(path + ("scale",), cls.FIELD_RULES["scale"]["expected"])
     else:
-        fix = "to close entirely use an abandon right" if kind == "contract" else ""
-        scale = ld.number(path + ("scale",), item["scale"], scale_what, fix=fix, **bounds)
+        scale = ld.field(path + ("scale",), item["scale"], cls, "scale")
     amount = Schedule.constant(0.0)
     if item.get(money) is not None:
         amount = ld.schedule(path + (money,), item[money], money_what, nonneg=nonneg)
@@ -34,12 +34,14 @@ class Expand(BaseRight):
     kind: ClassVar[str] = "expand"
     KEYS: ClassVar[tuple[str, ...]] = ("scale", "cost")
     one_shot: ClassVar[bool] = True
+    FIELD_RULES: ClassVar[dict] = {"scale": dict(
+        expected="the added fraction of the current scale, above 0 (0.3 = 30% more)", gt=0.0)}
+    NONNEG_SCHEDULES: ClassVar[dict] = {"cost": "the cost of the expansion"}
 
     @classmethod
     def parse(cls, ld, path, item):
-        return parse_scaled(ld, path, item, "expand", "cost", "the cost of the expansion",
-                            {"gt": 0.0}, "the added fraction of the current scale, above 0 "
-                            "(0.3 = 30% more)", nonneg=True)
+        return parse_scaled(ld, path, item, cls, "cost", cls.NONNEG_SCHEDULES["cost"],
+                            nonneg=True)
 
     def raw(self):
         return {"scale": self.scale, "cost": schedule_raw(self.cost)}

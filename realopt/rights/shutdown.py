@@ -30,6 +30,11 @@ class Shutdown(Switch):
     costs: tuple = field(init=False, repr=False)
     kind: ClassVar[str] = "shutdown"
     KEYS: ClassVar[tuple[str, ...]] = ("cost", "restart_cost", "maintenance")
+    FIELD_RULES: ClassVar[dict] = {"maintenance": dict(
+        expected="the yearly maintenance cost while shut, 0 or more", ge=0.0,
+        fix="a cost is written positive; it is paid every year while shut")}
+    NONNEG_SCHEDULES: ClassVar[dict] = {"cost": "the cost paid on each shutdown",
+                                        "restart_cost": "the cost paid on each restart"}
 
     def __post_init__(self):
         set_ = object.__setattr__
@@ -44,17 +49,15 @@ class Shutdown(Switch):
             ld.missing(path + ("cost",), "the cost paid on each shutdown (money, or "
                        "{year: amount})", "add e.g. cost: 1.5 (0 if shutting costs nothing)")
         else:
-            cost = ld.schedule(path + ("cost",), item["cost"], "the cost paid on each shutdown",
+            cost = ld.schedule(path + ("cost",), item["cost"], cls.NONNEG_SCHEDULES["cost"],
                                nonneg=True)
         restart = Schedule.constant(0.0)
         if item.get("restart_cost") is not None:
             restart = ld.schedule(path + ("restart_cost",), item["restart_cost"],
-                                  "the cost paid on each restart", nonneg=True)
+                                  cls.NONNEG_SCHEDULES["restart_cost"], nonneg=True)
         upkeep = 0.0
         if item.get("maintenance") is not None:
-            upkeep = ld.number(path + ("maintenance",), item["maintenance"], "the yearly "
-                               "maintenance cost while shut, 0 or more", ge=0.0,
-                               fix="a cost is written positive; it is paid every year while shut")
+            upkeep = ld.field(path + ("maintenance",), item["maintenance"], cls, "maintenance")
         if cost is None or restart is None or upkeep is None:
             return None
         return {"cost": cost, "restart_cost": restart, "maintenance": upkeep}

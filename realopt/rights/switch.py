@@ -8,6 +8,7 @@ from typing import ClassVar
 
 import numpy as np
 
+from ..keypaths import describe
 from ..model import Schedule
 from .base import Action, BaseRight
 from .raw import moved
@@ -51,8 +52,6 @@ class Switch(BaseRight):
     # ---- file --------------------------------------------------------------------------
     @classmethod
     def parse(cls, ld, path, item):
-        from ..project import describe
-
         modes_path = path + ("modes",)
         if "modes" not in item:
             ld.missing(modes_path, "a mapping of operating modes, e.g. {run: {scale: 1.0}, "
@@ -72,10 +71,8 @@ class Switch(BaseRight):
                           "base cash flows, fixed: yearly flow in this mode}") is None:
                 ok = False
                 continue
-            sc = ld.number(mp + ("scale",), spec.get("scale", 1.0), "the multiplier on the "
-                           "base cash flows in this mode, 0 or more", ge=0.0)
-            fx = ld.number(mp + ("fixed",), spec.get("fixed", 0.0), "the fixed yearly flow in "
-                           "this mode (+ inflow, - running cost)")
+            sc = ld.field(mp + ("scale",), spec.get("scale", 1.0), Mode, "scale")
+            fx = ld.field(mp + ("fixed",), spec.get("fixed", 0.0), Mode, "fixed")
             if sc is None or fx is None:
                 ok = False
             else:
@@ -180,14 +177,10 @@ class Switch(BaseRight):
                 out.append(idx)
         return out
 
-    def chance_of_use(self, sol, graph, edge_ids, occ):
+    def chance_of_use(self, graph, edge_ids, occ, first_uses):
         """First moves out of the start mode (a forward pass that drops the paths once they
         move), and the share of paths in each mode at each sampled date."""
-        from ..lattice import occupancy
-
-        grid = sol.grid
-        first = occupancy(sol, (grid.probability, grid.real_probability),
-                          absorb=set(edge_ids), at=())[1]
+        first = first_uses(edge_ids)
         rn_use = np.cumsum(first[0][:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(first[1][:, edge_ids].sum(axis=1))
         k = [s for s in graph.rights if s.modal].index(self)
@@ -204,8 +197,6 @@ class Switch(BaseRight):
         return rn_use, rw_use, measure, mode_shares
 
 def _mode_name(ld, path, value, known, what):
-    from ..project import describe
-
     if not isinstance(value, str) or value.strip() not in known:
         hint = difflib.get_close_matches(str(value), known, n=1)
         ld.bad(path, describe(value), f"{what}: one of the modes {', '.join(known)}",
@@ -216,8 +207,6 @@ def _mode_name(ld, path, value, known, what):
 
 
 def _switch_costs(ld, path, value, known, given):
-    from ..project import describe
-
     expected = "a mapping of moves to their costs, e.g. {run->idle: 0.5, idle->run: 2.0}"
     if not given:
         ld.missing(path, expected)

@@ -1,6 +1,6 @@
 """``realopt report FILE [-o DIR] [--set ...]``: value the project and write its report.
 
-Registered in realopt.cli's COMMANDS as ``"realopt.outputs.command:register"``. This module
+Registered in realopt.cli's COMMANDS as ``"realopt.report_command:register"``. This module
 imports only argparse at load time: the engine, pandas and matplotlib load inside the handler,
 so ``realopt appraise`` never imports a plotting library.
 """
@@ -13,7 +13,7 @@ from pathlib import Path
 
 def _moves(text: str):
     """--moves volatility=0.1,rates=0.005,relative=0.25 -> Moves."""
-    from .sensitivity import DEFAULT_MOVES, Moves
+    from .outputs.sensitivity import DEFAULT_MOVES, Moves
 
     values = {}
     for part in text.split(","):
@@ -36,7 +36,7 @@ def _moves(text: str):
 
 
 def register(sub) -> None:
-    from ..cli import add_project_options
+    from .cli import add_project_options
 
     p = sub.add_parser(
         "report", help="value the project and write its decision-paper report to a folder",
@@ -71,13 +71,13 @@ def register(sub) -> None:
 
 
 def run_report(args) -> int:
-    from ..cli import _out, appraise_from_args
-    from .report import write_report
-    from .sensitivity import DEFAULT_MOVES, report_solves
+    from .cli import _out, appraise_from_args
+    from .outputs.report import write_report
+    from .outputs.sensitivity import DEFAULT_MOVES, report_solves
 
     extra = []
     if getattr(args, "sweep", None):
-        from .sweep_figures import sweep_chart
+        from .outputs.sweep_figures import sweep_chart
 
         extra.append(sweep_chart(args.sweep))
     result = appraise_from_args(args, extra_solves=report_solves)
