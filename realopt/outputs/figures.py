@@ -112,8 +112,9 @@ def _threshold_lines(a, state=None):
                 if not pts:
                     continue
                 xs, ys = _broken(*zip(*pts), breaks)
-                what = r.name if r.type != "switch" else f"{r.name}: {action}"
-                what = f"invest ({r.name})" if r.type == "defer" else what
+                right = a.project.right(r.name)       # its type: modal moves are named
+                what = r.name if not right.modal else f"{r.name}: {action}"
+                what = f"invest ({r.name})" if right.commits else what
                 yield what, word, pts, xs, ys
 
 
@@ -298,8 +299,8 @@ def _draw_chance(fig, a, f: Fmt):
             xs, ys = r.use_years, np.asarray(getattr(r, attr)) * 100.0
             ax.plot(xs, ys, **style.line_style(k), marker=style.MARKERS[k % len(style.MARKERS)],
                     markevery=max(1, len(xs) // 8), markersize=3.5,
-                    label=_wrap(r.name + (" (in another mode)" if r.type == "switch" else ""),
-                                52))
+                    label=_wrap(r.name + (" (in another mode)" if a.project.right(r.name).modal
+                                          else ""), 52))
         ax.set_title(title, fontsize=8.5, loc="left")
         ax.set_xlim(0, a.lattice.horizon)
         ax.set_ylim(-2, 102)

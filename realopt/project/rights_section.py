@@ -37,7 +37,7 @@ class RightsSection:
             out.append(r)
         if not ok:
             return None
-        defers = [i for i, r in enumerate(out) if isinstance(r, model.Defer)]
+        defers = [i for i, r in enumerate(out) if r.commits]
         for i in defers[1:]:
             self.bad(path + (Index(i), "type"), "a second defer right", "at most one defer "
                      "right (one decision to commit)", "merge the waiting periods into one "
@@ -86,7 +86,7 @@ class RightsSection:
         specific = right_type(kind).parse(self, path, item)
         if None in (name, window, exercise, dates, requires, excludes, specific):
             return None
-        if kind == "defer" and window[0] != 0:
+        if right_type(kind).commits and window[0] != 0:
             self.bad(path + ("window",), f"a window starting at year {window[0]:g}",
                      "a defer window starting at 0 (committing now is always one of the choices)",
                      f"write window: [0, {window[1]:g}]")
@@ -150,7 +150,7 @@ class RightsSection:
         if not ok:
             return None
         out = sorted(set(out))
-        if kind == "defer" and out[0] != 0:
+        if kind is not None and right_type(kind).commits and out[0] != 0:
             self.bad(path, describe(value), "defer dates that include 0 (committing now is "
                      "always one of the choices)", "add 0 to the dates")
             return None
