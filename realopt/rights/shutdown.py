@@ -38,7 +38,8 @@ class Shutdown(Switch):
 
     def __post_init__(self):
         set_ = object.__setattr__
-        set_(self, "modes", (Mode(OPERATING, 1.0, 0.0), Mode(SHUT, 0.0, -self.maintenance if self.maintenance else 0.0)))
+        upkeep = -self.maintenance if self.maintenance else 0.0      # never -0.0
+        set_(self, "modes", (Mode(OPERATING, 1.0, 0.0), Mode(SHUT, 0.0, upkeep)))
         set_(self, "start", OPERATING)
         set_(self, "costs", ((OPERATING, SHUT, self.cost), (SHUT, OPERATING, self.restart_cost)))
 
