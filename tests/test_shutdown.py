@@ -12,6 +12,8 @@ from __future__ import annotations
 import textwrap
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 import realopt
 from realopt.model import Shutdown, Switch
@@ -147,3 +149,21 @@ def test_a_python_built_shutdown_gets_the_files_messages():
         loads(HEAD + SHUTDOWN.replace("maintenance: 0.6", "maintenance: -2"), source="f.yaml")
     assert ("rights[0].maintenance: found -2; expected the yearly maintenance cost while shut, "
             "0 or more. Fix: a cost is written positive") in str(err.value)
+
+
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(cost=st.floats(0.0, 5.0), restart=st.floats(0.0, 5.0), upkeep=st.floats(0.0, 3.0),
+       end=st.sampled_from([2.0, 3.5, 5.0]))
+def test_shutdown_equals_its_switch_for_any_costs(cost, restart, upkeep, end):
+    """Built in Python: the shutdown and the switch it stands for value the same, exactly."""
+    from realopt.model import Mode, Schedule
+    from realopt.rights import example_project
+
+    c, rc = Schedule.constant(cost), Schedule.constant(restart)
+    sd = Shutdown(name="m", window=(0.0, end), cost=c, restart_cost=rc, maintenance=upkeep)
+    sw = Switch(name="m", window=(0.0, end), start="operating",
+                modes=(Mode("operating", 1.0, 0.0), Mode("shut", 0.0, -upkeep if upkeep else 0.0)),
+                costs=(("operating", "shut", c), ("shut", "operating", rc)))
+    a, b = realopt.appraise(example_project(sd)), realopt.appraise(example_project(sw))
+    assert a.expanded_npv == b.expanded_npv
+    assert a.rights[0].use_real_world == b.rights[0].use_real_world
