@@ -19,7 +19,12 @@ CAUTION = (
 
 
 def appraise(project, **kwargs):
-    """Value every right of ``project``; returns an :class:`realopt.appraisal.Appraisal`."""
+    """Value every right of ``project``; returns an :class:`realopt.appraisal.Appraisal`
+    (``valuation: simulation``: a :class:`realopt.simulation.result.SimulationAppraisal`)."""
+    if getattr(project, "valuation", "lattice") == "simulation":
+        from .simulation import appraise as _simulate
+
+        return _simulate(project, **kwargs)
     from .appraisal import appraise as _appraise
 
     return _appraise(project, **kwargs)

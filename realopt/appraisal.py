@@ -149,10 +149,15 @@ class Appraisal:
             "warnings": list(self.warnings),
             "headline_warnings": list(self.headline_warnings),
             "caution": CAUTION,
+            "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
+            "standard_error": {"present_value": 0.0, "expanded_npv": 0.0, "flexibility_value": 0.0},
         }
 
     def summary(self):
-        """Headline table (pandas DataFrame): one row per line of the value bridge."""
+        """Headline table (pandas DataFrame): one row per line of the value bridge. Both
+        columns add up: ``value`` down the rights (their Shapley shares) gives the flexibility
+        value, and so does ``standalone_value`` down the rights (each valued alone) plus the
+        interaction between them."""
         import pandas as pd
 
         rows = [("Present value of the operating project", self.present_value, None),
@@ -160,8 +165,10 @@ class Appraisal:
                 ("Static NPV", self.static_npv, None)]
         rows += [(f"{r.name} ({r.type})", r.shapley_value, r.standalone_value)
                  for r in self.rights]
-        rows += [("Interaction between rights", self.interaction, None),
-                 ("Flexibility value", self.flexibility_value, None),
+        if self.rights:
+            rows.append(("Interaction between rights", None, self.interaction))
+        rows += [("Flexibility value", self.flexibility_value,
+                  self.flexibility_value if self.rights else None),
                  ("Expanded NPV", self.expanded_npv, None)]
         return pd.DataFrame(rows, columns=["item", "value", "standalone_value"]).set_index("item")
 
@@ -287,10 +294,14 @@ def _without_gc_pauses(fn):
 @_without_gc_pauses
 def appraise(project: Project) -> Appraisal:
     """Value every right of ``project`` on the lattice; see :class:`Appraisal`.
-
     A project built in Python is checked against the model's rules first (realopt.validate):
-    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get."""
+    a bad value raises :class:`realopt.errors.ModelError` with the message a file would get.
+    (``valuation: simulation`` goes to realopt.simulation: a SimulationAppraisal.)"""
     validate.check(project)
+    if getattr(project, "valuation", "lattice") == "simulation":
+        from .simulation import appraise as simulate
+
+        return simulate(project)
     if len(project.rights) > MAX_RIGHTS:
         raise ValuationError(
             f"The project has {len(project.rights)} rights; exact Shapley shares need 2^n lattice "
@@ -675,47 +686,148 @@ def _decision_today(sol: Solution, graph: StateGraph, full: float, fmt) -> str:
     return verdict
 
 
+def _policy_runs(pol) -> dict:
+    """state -> step -> (starts, codes) as lists, every node covered (code 0 = carry on), read
+    from the recorded policy (run-length ``runs``, or the ``moves`` that list only the runs
+    where a right is used)."""
+    if hasattr(pol, "runs"):
+        return {s: {i: (list(map(int, st)), list(map(int, cd))) for i, (st, cd) in steps.items()}
+                for s, steps in pol.runs.items()}
+    out = {}
+    for s, steps in pol.moves.items():
+        per = out.setdefault(s, {})
+        for i, moves in steps.items():
+            starts, codes, pos = [], [], 0
+            for a, b, code in sorted(moves):
+                if a > pos:
+                    starts.append(pos)
+                    codes.append(0)
+                starts.append(int(a))
+                codes.append(int(code))
+                pos = int(b)
+            if pos <= i:
+                starts.append(pos)
+                codes.append(0)
+            per[i] = (starts, codes)
+    return out
+
+
 def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
+    """Best action per state on a reduced grid of dates and project values.
+
+    Columns: an even sample of ``n_times`` steps, plus one step of every run of consecutive
+    steps where an action is used that the sample would miss (a one-step bermudan date stays
+    on the map at any steps_per_year). Rows: log-spaced values covering the tree's central
+    band (3 standard deviations of ln V at each date, and around today's value over the whole
+    horizon), widened to hold the edge of every exercise region found (up to 8 standard
+    deviations out, and for an action used only farther out, its nearest node)."""
     grid, pol = sol.grid, sol.policy
     maps = []
-    steps = _sample_steps(grid.steps, limit=n_times)
-    lo = grid.log_v0 - 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
-    hi = grid.log_v0 + 3.0 * math.log(grid.up / grid.down) * math.sqrt(max(grid.steps, 1)) / 2
-    values = np.exp(np.linspace(lo, hi, n_values))
-    lv = np.log(values)
-    for s, runs in pol.moves.items():
-        codes_used = [0] + sorted({c for st in runs.values() for _, _, c in st})
+    step = math.log(grid.up / grid.down)
+    even = [int(i) for i in _sample_steps(grid.steps, limit=n_times)]
+    half = 3.0 * step * math.sqrt(max(grid.steps, 1)) / 2
+
+    log_down = math.log(grid.down)
+
+    def first_log(i):
+        """ln of the lowest node's value at step i as the decisions see it (None: all zero)."""
+        keep = grid.ex_fraction(i) if hasattr(grid, "ex_fraction") else 1.0 - float(
+            grid.delta[i])
+        if keep <= 0.0:
+            return None
+        x = grid.log_v0 + float(grid.log_carry[i]) + i * log_down + math.log(keep)
+        return x if math.isfinite(x) else None
+
+    def centre_sd(i):
+        b = first_log(i)
+        return (None if b is None else b + i * step / 2), step * math.sqrt(max(i, 1)) / 2
+
+    for s, runs in _policy_runs(pol).items():
+        codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
             (graph.edges[c - 1].right if graph.edges[c - 1].action != Action.SWITCH
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}
-        codes = np.full((n_values, len(steps)), -1, dtype=np.int16)
-        cols = [(col, int(i)) for col, i in enumerate(steps.tolist()) if int(i) in runs]
-        if grid.up > grid.down:      # node values grow with j: all positive iff the lowest is
-            ends = [grid.nodes_ex_at(i, (0, i)) for _, i in cols]
-            cols = [c for c, (v0, _) in zip(cols, ends) if v0 > 0]
-            ends = np.array([e for e in ends if e[0] > 0]).reshape(-1, 2)
-        else:
-            keep = [np.all(grid.nodes_ex(i) > 0) for _, i in cols]
-            cols = [c for c, k in zip(cols, keep) if k]
-            ends = np.array([grid.nodes_ex_at(i, (0, i)) for _, i in cols]).reshape(-1, 2)
-        if cols:
-            logs = np.log(ends)          # (elementwise: the same as logs of all of v)
-            step = math.log(grid.up / grid.down)
-            at = np.array([i for _, i in cols])
-            j = np.where(at > 0, np.rint((lv[:, None] - logs[None, :, 0]) / step), 0).astype(int)
-            inside = ((j >= 0) & (j <= at) & (lv[:, None] >= logs[:, 0] - step / 2)
-                      & (lv[:, None] <= logs[:, 1] + step / 2))
-            block = np.where(inside, 0, -1).astype(np.int16)
-            width = max(len(runs[i]) for _, i in cols)
-            for r in range(width):               # the r-th run of each date (if any)
-                a, b, c = (np.array(x) for x in zip(*[
-                    runs[i][r] if r < len(runs[i]) else (0, 0, 0) for _, i in cols]))
-                hit = inside & (j >= a) & (j < b)
-                block[hit] = np.broadcast_to(np.array([lookup.get(x, 0) for x in c.tolist()],
-                                                      dtype=np.int16), hit.shape)[hit]
-            codes[:, [col for col, _ in cols]] = block
+        # one pass over the run-length codes (a few runs per step, no node arrays): the
+        # steps each action is used at, and the edges of its regions in ln V
+        used_at: dict[int, list[int]] = {}
+        edges_at: list[float] = []
+        shown: set[int] = set()
+        nearest: dict[int, tuple[float, float]] = {}
+        for i in sorted(runs):
+            starts, codes = runs[i]
+            if not any(codes):
+                continue
+            b = first_log(i)
+            c, sd = centre_sd(i)
+            n_runs = len(codes)
+            for k, code in enumerate(codes):
+                if not code:
+                    continue
+                lst = used_at.setdefault(int(code), [])
+                if not lst or lst[-1] != i:
+                    lst.append(i)
+                if b is None:
+                    continue
+                first, last = starts[k], (starts[k + 1] - 1 if k + 1 < n_runs else i)
+                inner = ([first] if k > 0 else []) + ([last] if k + 1 < n_runs else [])
+                near = [b + j * step for j in inner if abs(b + j * step - c) <= 8 * sd]
+                if near:
+                    edges_at += near
+                    shown.add(code)
+                elif code not in shown:
+                    j = min(last, max(first, round((c - b) / step)))
+                    x = b + j * step
+                    if code not in nearest or abs(x - c) < nearest[code][0]:
+                        nearest[code] = (abs(x - c), x)
+        # dates: every run of steps using an action gets at least one column
+        cols = set(even)
+        for ii in used_at.values():
+            run = [ii[0]]
+            for i in ii[1:] + [None]:
+                if i is not None and i == run[-1] + 1:
+                    run.append(i)
+                    continue
+                if not cols.intersection(run):
+                    cols.add(run[len(run) // 2])
+                if i is not None:
+                    run = [i]
+        steps = np.array(sorted(cols), dtype=int)
+        # values: the central band, widened to every exercise region's edge
+        lo, hi = grid.log_v0 - half, grid.log_v0 + half
+        for i in steps:
+            c, sd = centre_sd(int(i))
+            if c is not None:
+                lo, hi = min(lo, c - 3 * sd), max(hi, c + 3 * sd)
+        if edges_at:
+            lo, hi = min(lo, min(edges_at)), max(hi, max(edges_at))
+        for code, (_, x) in nearest.items():
+            if code not in shown:
+                lo, hi = min(lo, x), max(hi, x)
+        pad = 0.5 * step
+        lo, hi = lo - pad, hi + pad
+        span = (hi - lo) / (0.45 * step) if step > 0 else float("nan")
+        n_v = int(min(800, max(n_values, math.ceil(span)))) if math.isfinite(span) else n_values
+        lv = np.linspace(lo, hi, n_v)
+        values = np.exp(lv)
+        codes = np.full((n_v, len(steps)), -1, dtype=np.int16)
+        for col, i in enumerate(steps):
+            i = int(i)
+            if i not in runs:
+                continue
+            v = grid.nodes_ex(i)
+            if not np.all(v > 0):
+                act = pol.actions(s, i)
+                if np.all(v == 0) and act.size and np.all(act == act[0]):
+                    codes[:, col] = lookup[int(act[0])]   # value 0 at every node (after the
+                continue                                   # last flow): one action for all
+            logs = np.log(v)
+            j = np.rint((lv - logs[0]) / step).astype(int) if i > 0 else np.zeros(n_v, int)
+            inside = (j >= 0) & (j <= i) & (lv >= logs[0] - step / 2) & (lv <= logs[-1] + step / 2)
+            act = pol.actions(s, i)
+            mapped = np.vectorize(lookup.get)(act) if act.size else act
+            codes[inside, col] = np.asarray(mapped)[j[inside]]
         maps.append(DecisionMap(state=graph.states[s].label, actions=tuple(labels),
                                 times=grid.times[steps], values=values, codes=codes))
     return tuple(maps)

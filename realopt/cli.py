@@ -134,10 +134,16 @@ def _excess(plan, memory, extra_solves: float = 0.0) -> list[str]:
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:
         out.append(f"about {_bytes(plan.memory_bytes)} of memory (this machine has "
                    f"{_bytes(memory)} available)")
-    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    seconds = _seconds_with(plan, extra_solves)
     if seconds > TIME_LIMIT:
         out.append(f"about {_seconds(seconds)} (the limit is {_seconds(TIME_LIMIT)})")
     return out
+
+
+def _seconds_with(plan, extra_solves: float) -> float:
+    """The plan's time estimate plus ``extra_solves`` solves of the whole project."""
+    one = getattr(plan, "solve_seconds", 0.0) or plan.seconds_estimate / max(1, plan.solves)
+    return plan.seconds_estimate + extra_solves * one
 
 
 def guard_message(project, plan, extra_solves: float = 0.0) -> str | None:
@@ -165,7 +171,7 @@ def _smaller_steps(project, plan, memory, extra_solves: float = 0.0) -> int | No
 
     spy = project.lattice.steps_per_year
     ratio = 1.0
-    seconds = plan.seconds_estimate * (1.0 + extra_solves / max(1, plan.solves))
+    seconds = _seconds_with(plan, extra_solves)
     if seconds > TIME_LIMIT:
         ratio = min(ratio, (TIME_LIMIT / seconds) ** 0.5)
     if memory is not None and plan.memory_bytes > MEMORY_SHARE * memory:
@@ -208,6 +214,11 @@ def run_check(args) -> int:
     for path in args.files:
         try:
             project = load_from_args(args, path)
+            if project.valuation == "simulation":      # realopt.simulation (own plan and text)
+                from .simulation.text import check_text
+
+                _out(check_text(path, project, available_memory()))
+                continue
             pl = make_plan(project)
         except ProjectError as err:
             _err(str(err))             # every problem names the file
@@ -239,6 +250,10 @@ def _check_text(path, project, pl) -> str:
         vol = f"volatility {u.volatility:.1%} a year"
     else:
         vol = f"volatility estimated from {u.volatility_estimate.method}"
+        if getattr(pl, "volatility", None) is not None:
+            vol += f": {pl.volatility:.1%} a year"
+            if getattr(pl, "volatility_stderr", None):
+                vol += f" (standard error {pl.volatility_stderr:.1%})"
     lines.append(f"  underlying: {what}; {vol}")
     for r in project.rights:
         lines.append(f"  right: {r.name} ({r.kind}, {r.exercise}, years {r.window[0]:g} to "
@@ -257,7 +272,9 @@ def _check_text(path, project, pl) -> str:
     lines.append("  warnings: none" if not warnings else "  warnings:")
     lines = [lines[0]] + [_wrap(x.strip(), "  ", "      ") for x in lines[1:]]
     lines += [_wrap(w, "    - ", "      ") for w in warnings]
-    return "\n".join(lines)
+    from .outputs.text import no_negative_zero
+
+    return no_negative_zero("\n".join(lines))
 
 
 # ------------------------------------------------------------------------------------------
@@ -297,6 +314,13 @@ def appraise_from_args(args, extra_solves=None):
     from .lattice import plan as make_plan
 
     project = load_from_args(args, args.file)
+    if project.valuation == "simulation":              # realopt.simulation (own guard)
+        from .simulation.text import appraise_guarded
+
+        try:
+            return appraise_guarded(project, args.allow_large, available_memory())
+        except ValuationError as err:
+            raise ValuationError(f"{args.file}: {err}") from None
     try:
         if not args.allow_large:
             extra = extra_solves(project) if extra_solves else 0.0
@@ -313,7 +337,8 @@ def run_appraise(args) -> int:
     if args.json:
         _out(to_json(result.to_dict()))
     else:
-        _out(headline(result))
+        _out(result.headline(WIDTH) if getattr(result, "method", "") == "simulation"
+             else headline(result))
     return 0
 
 
@@ -325,7 +350,7 @@ def headline(a) -> str:
     money = " ".join(x for x in (p.currency, p.unit) if x) or "money units"
 
     def num(x):
-        return "" if x is None else f"{x:,.2f}"
+        return "" if x is None else _money(x)
 
     labels = [f"{r.name} ({r.type})" for r in a.rights]
     w = max([46] + [len(s) for s in labels])
@@ -336,14 +361,18 @@ def headline(a) -> str:
         return f"{label:<{w}}" + "".join(f"{c:>16}" for c in cols)
 
     out = [f"{p.name}", f"amounts in {money}, valued today", ""]
-    se = getattr(a, "present_value_stderr", 0)   # simulated V0: its standard error beside it
-    out.append(row("Present value of the operating project", "",
-                   num(a.present_value) + (f" ± {se:,.2f}" if se else "")))
+    base = (getattr(a, "base", "") or "").strip()
+    if base and _base_is_not_plain(p):
+        text = base if base.lower().startswith("base project") else f"Base project: {base}"
+        out += [_wrap(text, "", "  "), ""]
+    se = getattr(a, "present_value_stderr", None)
+    out.append(row("Present value of the operating project", "", num(a.present_value))
+               + (f" \u00b1 {_money(se)} (standard error)" if se else ""))
     out.append(row("Investment (present value)", "", num(-a.investment_pv)))
     out.append(row("Static NPV (commit now, no flexibility)", "", num(a.static_npv)))
     out.append("")
     if a.rights:
-        out.append(row("Right", "standalone", "Shapley share"))
+        out.append(row("Right", "value alone", "Shapley share"))
         for label, r in zip(labels, a.rights):
             out.append(row(label, num(r.standalone_value), num(r.shapley_value)))
         out.append(row("Interaction between the rights", num(a.interaction), ""))
@@ -352,6 +381,11 @@ def headline(a) -> str:
         out.append("No rights in the file: the expanded NPV is the static NPV.")
     out.append(row("Expanded NPV (static NPV + flexibility)", "", num(a.expanded_npv)))
     out.append("")
+    first = list(getattr(a, "headline_warnings", ()) or ())
+    if first:
+        out.append("Read these numbers with the following warnings:")
+        out += [_wrap(x, "  ! ", "    ") for x in first]
+        out.append("")
     if getattr(a, "decision_today", None):
         out.append(f"Decision today: {a.decision_today}")
     out.append(_wrap(f"Volatility: {_volatility_text(a)}", "", "  "))
@@ -367,7 +401,27 @@ def headline(a) -> str:
         out += ["", "Warnings:"]
         out += [_wrap(x, "  - ", "    ") for x in a.warnings]
     out += ["", _wrap(CAUTION, "", "")]
-    return "\n".join(out)
+    from .outputs.text import no_negative_zero
+
+    return no_negative_zero("\n".join(out))
+
+
+def _base_is_not_plain(project) -> bool:
+    """Whether a switch right starts in a mode other than the plain project (scale 1, no fixed
+    flow): then the headline says which base project every subset of rights values."""
+    for r in project.rights:
+        modes = getattr(r, "modes", None)
+        if modes and getattr(r, "start", None) is not None:
+            m = next((m for m in modes if m.name == r.start), None)
+            if m is not None and (m.scale != 1.0 or m.fixed != 0.0):
+                return True
+    return False
+
+
+def _money(x: float) -> str:
+    """2 decimals with thousands separators; a tiny negative shows as 0.00, never -0.00."""
+    text = f"{x:,.2f}"
+    return "0.00" if text == "-0.00" else text
 
 
 def _volatility_text(a) -> str:

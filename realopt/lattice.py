@@ -126,6 +126,10 @@ class Plan:
     memory_bytes: int
     seconds_estimate: float
     warnings: tuple[str, ...]
+    solve_seconds: float = 0.0     # one solve of the whole project (the unit of extra solves)
+    volatility: float | None = None        # the yearly volatility used (given or estimated)
+    volatility_stderr: float | None = None
+    volatility_method: str = ""
 
 
 def _event_dates(project: Project, res: ResolvedUnderlying):
@@ -711,25 +715,63 @@ def _occupancy_alone(pol, state, ps, steps_at, targets, state_prob, exercised):
         state_prob[m, :, state] += [alive[i] for i in want]
 
 
+# Time model of ``plan`` (process time on this project's 2-core machine, one core per run,
+# measured with tests/benchmarks/bench_plan.py): a lattice solve costs NODE_SECONDS per node
+# and live state plus STEP_SECONDS + EDGE_SECONDS per open edge at every step; the appraisal
+# solves each distinct usable subset of rights once (the full set with the policy recorded)
+# and then spends about EXTRA_SOLVES solves of the whole project on the recorded policy, the
+# thresholds, two forward passes, the decision maps and the value fan.
+NODE_SECONDS = 1.6e-9
+STEP_SECONDS = 8e-6
+EDGE_SECONDS = 1.5e-6
+EXTRA_SOLVES = 8.0
+EXACT_SUBSETS = 6          # up to this many rights every subset's own state graph is counted
+
+
 def plan(project: Project) -> Plan:
-    """Grid and cost estimate without solving (for ``realopt check`` and the memory guard)."""
-    from .rights import build_state_graph, prepared_rights, structure_warnings
+    """Grid and cost estimate without solving (for ``realopt check`` and the memory guard).
+
+    ``solves`` is the number of distinct lattice solves of the appraisal (subsets of rights
+    that leave the same rights usable are solved once); ``seconds_estimate`` its wall time on
+    an unloaded machine, each subset costed with its own states and edges."""
+    from .rights import build_state_graph, prepared_rights, structure_warnings, usable_subset
     from .underlying import resolve
 
     res = resolve(project)
     grid = build_grid(project, res)
-    graph = build_state_graph(prepared_rights(project))
-    n = len(project.rights)
-    solves = 2 ** n if n else 1
+    rights = prepared_rights(project)
+    graph = build_state_graph(rights)
+    n = len(rights)
     live = sum(1 for s in graph.states if not s.abandoned)
     nodes = (grid.steps + 1) * (grid.steps + 2) / 2
-    # One solve: node work plus a per-step cost per open edge (calibrated on this project's
-    # 2-core machine: the demos' solves, and 10,000 steps in 0.24 s); the appraisal adds about
-    # ten solves' worth for the recorded policy, thresholds and two forward passes.
-    one = 3e-9 * nodes * max(1, live) + grid.steps * (10e-6 + 8e-6 * len(graph.edges))
-    seconds = one * (solves + 10)
+
+    def cost(g: StateGraph) -> float:
+        alive = sum(1 for s in g.states if not s.abandoned)
+        return NODE_SECONDS * nodes * max(1, alive) + grid.steps * (
+            STEP_SECONDS + EDGE_SECONDS * len(g.edges))
+
+    full = cost(graph)
+    if n == 0:
+        solves, seconds = 1, full * (1 + EXTRA_SOLVES)
+    elif n <= EXACT_SUBSETS:
+        open_rights = {r.name for r in rights if exercise_steps(grid, r).any()}
+        seen: dict[frozenset, float] = {}
+        for mask in range(1, 2 ** n):
+            names = {rights[k].name for k in range(n) if mask >> k & 1}
+            key = frozenset(r.name for r in usable_subset(rights, names)
+                            if r.name in open_rights)
+            if key and key not in seen:
+                seen[key] = cost(build_state_graph(
+                    tuple(r for r in rights if r.name in key)))
+        solves = max(1, len(seen))
+        seconds = sum(seen.values()) + EXTRA_SOLVES * full
+    else:                      # many rights: a subset has about half of the live states
+        solves = 2 ** n
+        seconds = (solves - 1) * 0.5 * full + (1 + EXTRA_SOLVES) * full
     return Plan(steps=grid.steps, step_years=grid.step_years, horizon=grid.horizon, up=grid.up,
                 down=grid.down, probability=grid.probability, states=len(graph.states),
                 solves=solves, memory_bytes=grid.memory_bytes(live), seconds_estimate=seconds,
                 warnings=tuple(project.warnings) + grid.warnings + tuple(structure_warnings(
-                    graph, res.last_flow_year, grid.horizon)))
+                    graph, res.last_flow_year, grid.horizon)), solve_seconds=full,
+                volatility=res.volatility, volatility_stderr=res.volatility_stderr,
+                volatility_method=res.volatility_method)

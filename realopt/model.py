@@ -22,6 +22,8 @@ import numpy as np
 COMPOUNDING = ("annual", "continuous")
 EXERCISE = ("american", "european", "bermudan")
 FLOW_TIMING = ("at_dates", "spread")
+VALUATION = ("lattice", "simulation")
+RISK_NEUTRAL = ("forward", "drift", "risk_premium")
 
 
 def growth_factor(rate: float, years, compounding: str):
@@ -45,6 +47,7 @@ class Schedule:
     points: tuple[tuple[float, float], ...] = ((0.0, 0.0),)
     start: float | None = None
     growth: float = 0.0
+    formula: str | None = None      # money as a formula over the drivers (valuation: simulation)
     today: float | None = None
 
     @classmethod
@@ -80,8 +83,15 @@ class Schedule:
         return self.start is None and self.today is None and len(
             {v for _, v in self.points}) == 1
 
+    @classmethod
+    def from_formula(cls, text: str) -> "Schedule":
+        """Money given by a formula over the drivers (simulation only; ``at`` does not apply)."""
+        return cls(formula=str(text))
+
     def describe(self, fmt: str = "{:,.2f}") -> str:
         """Short plain-words form, e.g. '12.00', '60.00 at year 0 to 35.00 at year 8'."""
+        if self.formula is not None:
+            return self.formula
         if self.start is not None:
             text = f"{fmt.format(self.start)} growing {self.growth:.1%} a year"
         elif len({v for _, v in self.points}) == 1:
@@ -125,6 +135,22 @@ class Driver:
     long_run: float = 0.0
     speed: float = 0.0
     schedule: Schedule | None = None
+    risk_neutral: "RiskNeutral | None" = None   # valuation: simulation (realopt.simulation)
+
+
+@dataclass(frozen=True)
+class RiskNeutral:
+    """A driver's risk-neutral description (valuation: simulation).
+
+    ``kind``: ``forward`` (E*[X_t] = F(t), F(0) = start, log-linear between ``forward`` points,
+    flat beyond the last), ``drift`` (gbm: risk-neutral drift of X, continuous yearly) or
+    ``risk_premium`` (market price of risk lambda = ``value``: the drift of ln X falls by
+    lambda * volatility; mean_reverting: the long-run level of ln X falls by lambda * vol / speed).
+    """
+
+    kind: str
+    value: float = 0.0
+    forward: tuple[tuple[float, float], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -243,6 +269,26 @@ from .rights.registry import RIGHT_TYPES  # noqa: E402,F401
 
 
 @dataclass(frozen=True)
+class SimulationSpec:
+    """Least-squares Monte Carlo settings (valuation: simulation; see realopt.simulation).
+
+    ``paths`` fit the exercise policy and as many again, independent, value it; ``steps_per_year``
+    decision dates a year inside american windows; ``basis`` the degree of the regression
+    polynomial in the drivers; ``upper_bound_paths``/``upper_bound_inner`` the dual upper bound
+    (0 = not asked); ``map_drivers`` the two drivers of the decision maps (empty: chosen).
+    """
+
+    paths: int = 50000
+    seed: int = 1
+    steps_per_year: int = 12
+    basis: int = 3
+    antithetic: bool = True
+    upper_bound_paths: int = 0
+    upper_bound_inner: int = 0
+    map_drivers: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
 class Project:
     """A validated project: everything the valuation needs, nothing about where it came from
     except ``source`` (the file, for messages) and the loader's ``warnings``."""
@@ -257,6 +303,8 @@ class Project:
     unit: str = ""
     source: str | None = None
     warnings: tuple[str, ...] = ()
+    valuation: str = "lattice"                 # lattice | simulation
+    simulation: SimulationSpec | None = None   # with valuation: simulation
     # the raw tree the loader validated (overrides applied) and its folder, so that moved copies
     # (realopt.outputs.sensitivity) go through the loader again; None when built in Python
     origin: tuple | None = field(default=None, compare=False, repr=False)

@@ -226,8 +226,9 @@ def register(sub) -> None:
             money (the files should share one currency and unit)."""),
         epilog=textwrap.dedent("""\
             examples:
-              realopt portfolio projects/*.yaml
-              realopt portfolio projects/*.yaml --budget 80 -o committee-2027"""),
+              realopt portfolio projects/coating_line.yaml projects/peaking_unit.yaml
+              realopt portfolio projects/coating_line.yaml projects/flake_line.yaml \\
+                  projects/peaking_unit.yaml projects/staged_field.yaml --budget 80 -o committee-2027"""),
         formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("files", nargs="+", metavar="FILE", help="YAML project files")
     p.add_argument("--budget", metavar="AMOUNT", type=_amount,
@@ -277,6 +278,11 @@ def run_portfolio(args) -> int:
     for f in args.files:                          # validate everything before any work is sent
         try:
             project = resolver(load_from_args(args, f))
+            if project.valuation == "simulation":
+                raise ValuationError(
+                    f"{f}: valuation: simulation is not covered by realopt portfolio yet (the "
+                    "choices today are read off the lattice). Fix: appraise it with realopt "
+                    "appraise, or value it on the lattice for the portfolio")
             refusal = None if args.allow_large else guard_message(project, make_plan(project))
             if refusal:
                 raise ValuationError(f"{f}: {refusal}")

@@ -174,7 +174,15 @@ def validate_points(args, varies, points, fixed):
             lab[v.key] = f"--vary {v.key}={text}"
         try:
             project = resolver(load_project(args.file, over, labels=lab))
-            if not args.allow_large:
+            if project.valuation == "simulation":       # its own plan and guard
+                from .cli import available_memory
+                from .simulation.result import guard_message as sim_guard, plan as sim_plan
+
+                refusal = None if args.allow_large else sim_guard(
+                    project, sim_plan(project), available_memory())
+                if refusal:
+                    raise ValuationError(refusal)
+            elif not args.allow_large:
                 refusal = guard_message(project, make_plan(project))
                 if refusal:
                     raise ValuationError(refusal)

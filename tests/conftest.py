@@ -55,7 +55,15 @@ def repo_root() -> Path:
 
 @pytest.fixture
 def demo_projects() -> list[Path]:
-    return sorted((ROOT / "projects").glob("*.yaml"))
+    """The lattice demos (simulation demos: ``simulation_demos``, tests/test_simulation.py)."""
+    return [p for p in sorted((ROOT / "projects").glob("*.yaml"))
+            if "\nvaluation: simulation" not in p.read_text()]
+
+
+@pytest.fixture
+def simulation_demos() -> list[Path]:
+    return [p for p in sorted((ROOT / "projects").glob("*.yaml"))
+            if "\nvaluation: simulation" in p.read_text()]
 
 
 @pytest.fixture

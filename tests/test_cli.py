@@ -189,6 +189,61 @@ def test_help_teaches(cli):
     assert cli("--version").out.strip() == f"realopt {realopt.__version__}"
 
 
+def _help_examples():
+    """Every 'realopt ...' example line of the --help texts (top level and each command)."""
+    import argparse
+
+    parser = cli_module.build_parser()
+    texts = [parser.epilog or ""]
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            texts += [sp.epilog or "" for sp in action.choices.values()]
+    out = []
+    for text in texts:
+        lines = iter(text.splitlines())
+        for line in lines:
+            m = re.match(r"\s*(?:examples?:\s*)?realopt\s+(.*)$", line)
+            if m:
+                cmd = m.group(1).rstrip()
+                while cmd.endswith("\\"):                # a shell continuation line
+                    cmd = cmd[:-1].rstrip() + " " + next(lines, "").strip()
+                out.append(cmd.split(" > ")[0].strip())
+    return out
+
+
+def test_every_help_example_runs_on_the_demos(cli, repo_root, monkeypatch, tmp_path, engine):
+    """Issue 8 item 9: each example of the --help texts exits 0 on the demo projects, each run
+    in a fresh folder (a shell glob is expanded as the shell would; an example naming a
+    cluster at a placeholder address is left out; the report's writer is replaced by a
+    stand-in that records its call, the report itself being tested in test_outputs.py)."""
+    import glob
+    import shlex
+
+    from realopt.outputs import report as report_mod
+
+    examples = _help_examples()
+    assert len(examples) >= 8 and any(e.startswith("report ") for e in examples)
+    written = []
+    monkeypatch.setattr(report_mod, "write_report",
+                        lambda a, out, **kw: written.append((a.project.name, out)))
+    ran = 0
+    for k, example in enumerate(examples):
+        if re.search(r"--scheduler\s+tcp://", example):
+            continue                    # needs a running cluster at a placeholder address
+        here = tmp_path / f"example-{k}"        # each example in a fresh folder, as a user
+        here.mkdir()                            # trying one would; its output lands there
+        (here / "projects").symlink_to(repo_root / "projects")
+        monkeypatch.chdir(here)
+        argv = []
+        for word in shlex.split(example):
+            argv += sorted(glob.glob(word)) if "*" in word else [word]
+        res = cli(*argv)
+        assert res.code == 0, (example, res.text)
+        ran += 1
+    assert ran >= len(examples) - 1
+    assert len(written) == sum(1 for e in examples if e.startswith("report "))
+
+
 # ---- demo projects ---------------------------------------------------------------------------
 
 
@@ -245,7 +300,7 @@ def test_demo_appraise_prints_the_headline_table(demo_projects, cli, engine):
         assert res.code == 0, res.text
         _no_traceback(res)
         proj = realopt.load_project(p)
-        for text in ("Present value of the operating project", "Static NPV", "standalone",
+        for text in ("Present value of the operating project", "Static NPV", "value alone",
                      "Shapley share", "Interaction", "Expanded NPV", proj.name,
                      f"{proj.currency} {proj.unit}", "When to use each right"):
             assert text in res.out, (p.name, text)
@@ -359,6 +414,42 @@ def test_guard_refuses_a_run_beyond_the_machine_and_names_a_smaller_step(cli, re
     assert res.code == 0, res.text
 
 
+FOUR_RIGHTS = """
+project: {name: "Four rights (invented figures)"}
+market: {risk_free_rate: 0.04, discount_rate: 0.09}
+underlying:
+  cash_flows: {1: 8, 2: 9, 3: 10, 4: 10, 5: 10, 6: 10, 7: 10, 8: 10, 9: 10, 10: 10}
+  terminal_value: 40
+  volatility: 0.3
+investment: {cost: 60}
+lattice: {steps_per_year: 1000}
+rights:
+  - {name: Wait, type: defer, window: [0, 2]}
+  - {name: Grow, type: expand, window: [2, 4], scale: 0.3, cost: 10}
+  - {name: Grow more, type: expand, window: [3, 8], scale: 0.3, cost: 12, requires: [Grow]}
+  - {name: Sell, type: abandon, window: [5, 10], salvage: 15}
+"""
+
+
+def test_time_estimate_costs_each_distinct_subset_with_its_own_states(engine):
+    """Issue 8 item 9: the estimate was several times too pessimistic at 1,000-2,000 steps a
+    year because it charged every one of the 2^n subset solves with all of the project's
+    states. Subsets that leave the same rights usable are solved once (the appraisal caches
+    them), and a subset's solve costs its own states. Measured ratios: bench_plan.py."""
+    from realopt.lattice import NODE_SECONDS, plan
+    from realopt.project import loads
+
+    pl = plan(loads(FOUR_RIGHTS))
+    # 15 non-empty subsets; the 4 holding 'Grow more' without Grow use the same rights as
+    # without 'Grow more'
+    assert pl.solves == 11
+    nodes = (pl.steps + 1) * (pl.steps + 2) / 2
+    live = pl.states - 1                               # every state but 'abandoned'
+    charged_all = NODE_SECONDS * nodes * live * (2 ** 4)
+    assert pl.seconds_estimate < 0.8 * charged_all + pl.solve_seconds * 10
+    assert pl.solve_seconds >= NODE_SECONDS * nodes * live
+
+
 def test_time_guard(cli, repo_root, monkeypatch, engine):
     monkeypatch.setattr(cli_module, "TIME_LIMIT", 1e-9)
     res = cli("appraise", repo_root / "projects" / "coating_line.yaml")
@@ -469,3 +560,37 @@ def test_report_guard_counts_the_reports_extra_solves(cli, repo_root, monkeypatc
     res = cli("report", path, "-o", out)
     assert res.code == 1 and "the limit is" in res.err and "--allow-large" in res.err
     assert "Traceback" not in res.text and not out.exists()
+
+
+def test_check_shows_the_estimated_volatility(cli, repo_root, engine):
+    """Issue 8 item 9: `check` computes the simulated (or history) volatility to build the
+    lattice; it prints that figure, the one `appraise` uses, with its standard error."""
+    p = repo_root / "projects" / "flake_line.yaml"
+    a = realopt.appraise(realopt.load_project(p))
+    assert a.volatility_stderr is not None               # the demo's volatility is simulated
+    out = " ".join(cli("check", p).out.split())
+    assert f"estimated from simulation: {a.volatility:.1%} a year" in out
+    assert f"(standard error {a.volatility_stderr:.1%})" in out
+
+
+def test_headline_shows_base_stderr_and_headline_warnings(cli, repo_root, engine, monkeypatch):
+    """Page one of the terminal output carries the base project, V0's standard error and
+    the headline warnings when the result has them; tiny negatives print as 0.00."""
+    from dataclasses import replace as dc_replace
+
+    p = repo_root / "projects" / "coating_line.yaml"
+    a = realopt.appraise(realopt.load_project(p))
+    first = dc_replace(a.rights[0], shapley_value=-1e-12)
+    a = dc_replace(a, rights=(first,) + a.rights[1:])
+    object.__setattr__(a, "headline_warnings", ("Sell the line: proceeds after the last flow",))
+    object.__setattr__(a, "base", "the plant in its run mode")
+    object.__setattr__(a, "present_value_stderr", 0.123)
+    assert not cli_module._base_is_not_plain(a.project)   # no switch: the base goes unsaid
+    assert "Base project" not in cli_module.headline(a)
+    monkeypatch.setattr(cli_module, "_base_is_not_plain", lambda project: True)
+    text = cli_module.headline(a)
+    head = text.split("When to use each right")[0]
+    assert "Base project: the plant in its run mode" in head
+    assert "\u00b1 0.12 (standard error)" in head
+    assert "Sell the line: proceeds after the last flow" in head
+    assert "-0.00" not in text

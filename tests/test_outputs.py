@@ -23,6 +23,7 @@ any number) and the engine's public functions; no outside reference is needed fo
 from __future__ import annotations
 
 import hashlib
+import html
 import html.parser
 import json
 import math
@@ -32,6 +33,7 @@ import sys
 from dataclasses import asdict, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 from hypothesis import given, settings
@@ -45,7 +47,7 @@ from realopt.model import (Contract, Defer, Expand, Investment, LatticeSpec, Mar
 from realopt.outputs import report as report_mod
 from realopt.outputs.report import MARKER, ReportError, write_report
 from realopt.outputs.sensitivity import DEFAULT_MOVES, analyse
-from realopt.outputs.tables import Fmt, inputs_rows
+from realopt.outputs.tables import Fmt, inputs_rows, no_negative_zero
 
 ROOT = Path(__file__).resolve().parents[1]
 DPI = 72            # small figures keep the tests quick; the format is the same at 300 dpi
@@ -137,6 +139,7 @@ def result_strings(a, s) -> list[str]:
     out = [a.decision_today, a.volatility_method, CAUTION, a.project.name, s.moves.describe(),
            f"realopt {realopt.__version__}"]
     out += list(a.warnings) + list(s.notes)
+    out += list(getattr(a, "headline_warnings", ())) + [getattr(a, "base", "") or ""]
     for r in a.rights:
         out += [r.name, r.rule, r.use_measure]
     for row in s.rows:
@@ -158,7 +161,7 @@ def allowed_tokens(a, s) -> set[str]:
         out |= {f.money(x), f.pct(x), f.pct(x, 2), f.number(x), f.year(x), f"{x:g}",
                 f"{x * 100:.3g}%", f"{x * 100:g}%"}
     for text in result_strings(a, s):
-        out |= set(NUMBER.findall(text))
+        out |= set(NUMBER.findall(text)) | set(NUMBER.findall(no_negative_zero(text)))
     return out
 
 
@@ -246,7 +249,8 @@ def test_csv_tables_hold_the_results_numbers_exactly(case):
     bridge = _csv(out, "value_bridge")
     summ = a.summary()
     assert list(bridge["item"]) == list(summ.index)
-    assert list(bridge["value"]) == list(summ["value"])
+    assert _same(bridge["value_or_shapley_share"], summ["value"])
+    assert _same(bridge["value_of_the_right_alone"], summ["standalone_value"])
     rights = _csv(out, "rights")
     assert list(rights["shapley_value"]) == [r.shapley_value for r in a.rights]
     assert list(rights["standalone_value"]) == [r.standalone_value for r in a.rights]
@@ -271,6 +275,54 @@ def test_csv_tables_hold_the_results_numbers_exactly(case):
     assert list(conv["expanded_npv"]) == list(s.convergence.expanded_npv)
 
 
+def _same(xs, ys, rel=0.0) -> bool:
+    """Equal lists of floats (to ``rel``), NaN (an empty cell) equal to NaN."""
+    xs, ys = [float(x) for x in xs], [float("nan") if y is None else float(y) for y in ys]
+    return len(xs) == len(ys) and all(
+        abs(x - y) <= rel * abs(y) or (math.isnan(x) and math.isnan(y)) for x, y in zip(xs, ys))
+
+
+def _headline_table(out):
+    """The first table of report.html (the headline numbers) as rows of (label, value or None,
+    value alone or None), read from the cells' exact data-value."""
+    page = (out / "report.html").read_text(encoding="utf-8")
+    table = page[page.index("<table>"):page.index("</table>")]
+    rows = []
+    for tr in re.findall(r"<tr[^>]*>(.*?)</tr>", table)[1:]:
+        cells = re.findall(r"<td([^>]*)>(.*?)</td>", tr)
+        vals = [float(m.group(1)) if (m := re.search(r'data-value="([^"]+)"', attrs)) else None
+                for attrs, _ in cells[1:]]
+        rows.append((html.unescape(cells[0][1]), *vals))
+    return page[page.index("<table>"):page.index("</thead>")], rows
+
+
+def test_the_value_table_adds_up_down_both_columns(case, tmp_path):
+    """Issue 8 item 4: reading down the Shapley column gives the flexibility value (the
+    interaction between the rights is not in it); the interaction sits beside the values of
+    the rights alone, which with it also add up to the flexibility value. Same in the CSV and
+    report.md. (An additive identity of Shapley shares: efficiency, common practice.)"""
+    a, s, out = case
+    head, rows = _headline_table(out)
+    assert "Shapley share" in head and "Value of the right alone" in head
+    by = {label: (v, alone) for label, v, alone in rows}
+    names = [f"{r.name} ({r.type})" for r in a.rights]
+    inter = by["Interaction between rights"]
+    assert inter[0] is None and inter[1] == a.interaction
+    flex = by["Flexibility value"]
+    assert flex == (a.flexibility_value, a.flexibility_value)
+    assert sum(by[n][0] for n in names) == pytest.approx(a.flexibility_value, abs=1e-9)
+    assert sum(by[n][1] for n in names) + inter[1] == pytest.approx(a.flexibility_value,
+                                                                     abs=1e-9)
+    bridge = _csv(out, "value_bridge").set_index("item")
+    assert math.isnan(bridge.loc["Interaction between rights", "value_or_shapley_share"])
+    assert bridge.loc[names, "value_or_shapley_share"].sum() == pytest.approx(
+        a.flexibility_value, abs=1e-9)
+    md = (out / "report.md").read_text(encoding="utf-8")
+    line = next(x for x in md.splitlines() if x.startswith("| Interaction between rights"))
+    cells = [c.strip() for c in line.strip("|").split("|")]
+    assert cells[1] == "" and cells[2] == Fmt(a.project).money(a.interaction)
+
+
 def test_results_json_is_the_contract(case):
     a, s, out = case
     from realopt.cli import to_json
@@ -286,8 +338,7 @@ def test_workbook_has_every_table(case):
     book = pd.read_excel(out / "tables.xlsx", sheet_name=None)
     stems = {p.stem for p in (out / "tables").glob("*.csv")}
     assert set(book) == stems
-    assert list(book["value_bridge"]["value"]) == pytest.approx(list(a.summary()["value"]),
-                                                                rel=1e-15)
+    assert _same(book["value_bridge"]["value_or_shapley_share"], a.summary()["value"], 1e-15)
 
 
 # ------------------------------------------------------------------------ self-contained HTML
@@ -550,3 +601,168 @@ def test_report_command_fails_cleanly(tmp_path, cli):
     r = cli("report", bad, "-o", tmp_path / "never")
     assert r.code == 1 and "Traceback" not in r.text
     assert not (tmp_path / "never").exists()
+
+
+# ------------------------------------------------------------------------ decision maps (issue 8)
+BERMUDAN_MILL = """
+project: {name: "Bermudan mill (invented figures)", currency: EUR, unit: million}
+market: {risk_free_rate: 0.04, discount_rate: 0.10}
+underlying:
+  cash_flows: {1: 8, 2: 10, 3: 11, 4: 11, 5: 10, 6: 9}
+  terminal_value: 30
+  volatility: 0.3
+investment: {cost: 50}
+lattice: {steps_per_year: 200}
+rights:
+  - {name: Add a press, type: expand, scale: 0.4, cost: 12, window: [1, 5],
+     exercise: bermudan, dates: [1, 2, 3, 4, 5]}
+  - {name: Sell the mill, type: abandon, salvage: {0: 30, 6: 12}, window: [0, 6]}
+"""
+
+
+@pytest.fixture(scope="module")
+def bermudan_200():
+    from realopt.project import loads
+
+    return realopt.appraise(loads(BERMUDAN_MILL))
+
+
+def _policy_regions(a):
+    """(state label, action label) of every action the recorded policy uses, read from a
+    fresh solve of the same project (the engine's own policy, not the map)."""
+    from realopt.appraisal import _Valuer
+    from realopt.lattice import solve
+    from realopt.rights import build_state_graph
+
+    v = _Valuer(a.project)
+    graph = build_state_graph(v.rights)
+    sol = solve(v.grid, graph, record=True)
+    from realopt.appraisal import _policy_runs
+
+    out = set()
+    for s, runs in _policy_runs(sol.policy).items():
+        for starts, codes in runs.values():
+            for c in set(codes) - {0}:
+                e = graph.edges[c - 1]
+                out.add((graph.states[s].label,
+                         e.right if e.kind != "switch" else f"{e.right}: {e.label}"))
+    return out
+
+
+def test_every_exercise_region_is_on_the_decision_maps_at_200_steps_a_year(bermudan_200):
+    """Issue 8 item 5: one-step-wide bermudan dates (1/200 of a year) and regions far below
+    today's value keep their cells on the map, and every threshold read from a state lies
+    inside the value axis of that state's map."""
+    a = bermudan_200
+    regions = _policy_regions(a)
+    assert ("operating", "Add a press") in regions and ("operating", "Sell the mill") in regions
+    maps = {dm.state: dm for dm in a.decision_maps}
+    for state, action in regions:
+        dm = maps[state]
+        k = dm.actions.index(action)
+        assert np.any(dm.codes == k), (state, action)
+    from realopt.appraisal import _Valuer, _plausible
+
+    grid = _Valuer(a.project).grid
+    for r in a.rights:
+        for t in r.thresholds:
+            dm = maps.get(t.state)
+            if not _plausible(grid, t):     # beyond 5 standard deviations: table only
+                continue
+            for b in (t.lower, t.upper):
+                if dm is not None and b is not None and not t.never:
+                    assert dm.values[0] <= b <= dm.values[-1], (r.name, t)
+    # each bermudan date has its own column (the even sample alone would miss most of them)
+    op = maps["operating"]
+    k = op.actions.index("Add a press")
+    dates = {round(float(t), 6) for t, col in zip(op.times, op.codes.T) if np.any(col == k)}
+    assert dates == {1.0, 2.0, 3.0, 4.0, 5.0}
+
+
+def test_one_step_dates_are_drawn_wide_enough_to_see(bermudan_200):
+    """The drawn map holds the fill of every action on it (pixels of that colour), and a
+    one-step date's column is at least MIN_COLUMN of the time axis wide."""
+    from realopt.outputs import figures, style
+
+    a = bermudan_200
+    chart = next(c for c in figures.charts(a, None) if c.slug.startswith("decision_map_1"))
+    _, rgb = figures.render(chart, dpi=100)
+    styles = figures._action_styles(a)
+    dm = a.decision_maps[0]
+    for label in dm.actions[1:]:
+        fill = styles[label][0]
+        want = np.array([int(fill[i:i + 2], 16) for i in (1, 3, 5)])
+        hits = np.all(np.abs(rgb.astype(int) - want) <= 2, axis=-1).sum()
+        assert hits > 60, (label, hits)
+    assert figures.MIN_COLUMN >= 0.01
+
+
+def test_switch_shows_chance_of_first_switch_and_mode_shares(tmp_path):
+    """Issue 8 item 6: a switch right's chance of use is the chance of having switched at
+    least once (it never falls) and, separately, the share of paths in each mode; each is
+    drawn and tabulated under its own label. Where the engine does not provide mode shares
+    yet, invented ones are attached to the result so the outputs can be checked."""
+    a = realopt.appraise(built_project())
+    r = next(x for x in a.rights if x.type == "switch")
+    if not getattr(r, "mode_shares", None):
+        n = len(r.use_years)
+        idle = (tuple(np.linspace(0.0, 0.3, n)), tuple(np.linspace(0.0, 0.4, n)))
+        run = tuple(tuple(1.0 - x for x in t) for t in idle)
+        object.__setattr__(r, "mode_shares", {"run": run, "idle": idle})
+    shares = r.mode_shares
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    assert (out / "figures" / "switch_modes.png").is_file()
+    table = _csv(out, "mode_shares")
+    got = table[table["mode"] == "idle"]
+    assert list(got["real_world"]) == list(shares["idle"][1])
+    assert list(got["risk_neutral"]) == list(shares["idle"][0])
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "Share of paths in each mode of a switch right" in page
+    assert "not the chance of having switched" in page
+    assert "Chance of having switched at least once by year" in page
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "Share of paths in mode &#x27;idle&#x27;" in page or "mode 'idle'" in md
+
+
+def test_first_pdf_page_is_full_with_five_rights(tmp_path):
+    """Issue 8 item 9: with five rights the headline table grew and the value bridge moved
+    to page 2, leaving page 1 half empty (0.45 of its height used); the bridge now shrinks a
+    little to stay beside the headline numbers, or where page-one warnings leave no room, the
+    rule card follows it on page 2 (the manifest records the share of each page used)."""
+    from realopt.model import Abandon
+
+    p = built_project()
+    p = replace(p, rights=p.rights + (Abandon(name="Sell the mill to a rival",
+                                              window=(1.0, 6.0),
+                                              salvage=Schedule.constant(35.0)),))
+    a = realopt.appraise(p)
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    manifest = json.loads((out / MARKER).read_text(encoding="utf-8"))
+    fill = manifest["pdf_fill"]
+    assert fill[0] >= 0.65 and fill[1] >= 0.7, fill         # no half-empty page at the start
+    assert len(manifest["pdf_fill"]) == len(manifest["pdf_pages"])
+
+
+def test_page_one_shows_headline_warnings_base_and_stderr(tmp_path, monkeypatch):
+    """Issue 8: the warnings that bear on the headline numbers, the base project (where a
+    switch starts outside the plain project) and V0's standard error sit with the headline
+    numbers on page one of the HTML, Markdown and PDF (values attached here by hand where the
+    engine does not provide them yet)."""
+    a = realopt.appraise(built_project())
+    warning = "Close one hall: can be used at the last cash-flow year, check the savings"
+    object.__setattr__(a, "headline_warnings", (warning,))
+    object.__setattr__(a, "base", "Base project: the cash flows as given, with the mill idle")
+    object.__setattr__(a, "present_value_stderr", 0.25)
+    monkeypatch.setattr(report_mod, "_base_is_not_plain", lambda project: True)
+    out = tmp_path / "report"
+    write_report(a, out, dpi=DPI)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    first = page[:page.index("Decision rule card")]
+    assert html.escape(warning, quote=True) in first and "with the mill idle" in first
+    assert "\u00b1 0.25" in first
+    assert first.index(html.escape(warning, quote=True)) < first.index("<table>")
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert warning in md[:md.index("## Decision rule card")]
+    assert "Base project: Base project" not in page + md

@@ -335,9 +335,14 @@ def test_warnings(minimal_project_text):
     assert len(p.warnings) == 1 and "ignored" in p.warnings[0]
 
 
-def test_percentage_typo_warns(minimal_project_text):
-    p = loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 4"))
-    assert any("write 0.04" in w for w in p.warnings)
+def test_percentage_typo_is_refused_at_the_key(minimal_project_text):
+    """A rate of 4 is 4% written without its sign: refused at the key with the fraction
+    (before, a warning that the lattice's p-out-of-range error hid)."""
+    with pytest.raises(ProjectError) as err:
+        loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 4"))
+    assert "market.risk_free_rate" in str(err.value) and "did you mean 0.04?" in str(err.value)
+    assert loads(minimal_project_text.replace("risk_free_rate: 0.04", "risk_free_rate: 1")
+                 ).market.risk_free_rate == 1.0       # 100% a year is still a rate
 
 
 # ---- overrides -----------------------------------------------------------------------------------
@@ -435,3 +440,20 @@ def test_any_text_gives_a_project_or_problems(text):
         loads(text)
     except ProjectError as err:
         assert str(err)
+
+
+def test_loader_warnings_name_the_right_they_concern(minimal_project_text):
+    """Issue 8 item 9: a warning located in a right's entry starts with that right's name
+    (the file line and key path alone made the reader count list items)."""
+    from realopt.project import Index, _Builder, parse_text
+
+    text = minimal_project_text.replace("rights:\n", "rights:\n  - {name: Wait for the permit, "
+                                        "type: defer, window: [0, 2]}\n")
+    b = _Builder(parse_text(text, "<text>"), ".")
+    b.warn(("rights", Index(0), "window"), "a window past the last cash flow")
+    b.warn(("rights", Index(0), "cost"), "Wait for the permit: already named")
+    b.warn(("market", "risk_free_rate"), "not about a right")
+    assert b.warnings[0].endswith("rights[0].window: Wait for the permit: a window past the "
+                                  "last cash flow")
+    assert b.warnings[1].endswith("rights[0].cost: Wait for the permit: already named")
+    assert b.warnings[2].endswith("market.risk_free_rate: not about a right")

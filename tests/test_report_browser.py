@@ -125,3 +125,56 @@ def test_page_prints_on_a4_and_letter(report, tmp_path, paper):
     for w, h in boxes:
         assert abs(float(w) - want[0]) < 2 and abs(float(h) - want[1]) < 2
     assert len(boxes) >= 4
+
+
+TABLE_PROBE = """
+<script>
+window.addEventListener('load', function () {
+  var bad = [];
+  Array.prototype.slice.call(document.querySelectorAll('table')).forEach(function (t, k) {
+    var box = t.parentElement.getBoundingClientRect();
+    var r = t.getBoundingClientRect();
+    if (t.scrollWidth > t.clientWidth + 1 || r.right > box.right + 1)
+      bad.push({table: k, width: t.scrollWidth, room: box.width});
+  });
+  var out = document.createElement('pre');
+  out.id = 'realopt-probe';
+  out.textContent = 'PROBE' + JSON.stringify({bad: bad,
+    scrollWidth: document.documentElement.scrollWidth, innerWidth: window.innerWidth}) + 'PROBE';
+  document.body.appendChild(out);
+});
+</script>
+"""
+
+
+def test_tables_fit_900_px_with_four_long_right_names(tmp_path):
+    """Issue 8 item 9: at 900 px wide, the chance-of-use table (a column per right) and every
+    other table stay inside the page with four long right names."""
+    from dataclasses import replace
+
+    from test_outputs import built_project
+
+    p = built_project()
+    long = ["Wait for the regional permit and the grid connection offer",
+            "Add a second press line in the east hall when demand allows",
+            "Close one of the two finishing halls and sublet the space",
+            "Mothball the whole mill during a prolonged downturn in demand"]
+    p = replace(p, rights=tuple(replace(r, name=n) for r, n in zip(p.rights, long)))
+    a = realopt.appraise(p)
+    out = tmp_path / "report"
+    write_report(a, out, dpi=72)
+    page = (out / "report.html").read_text(encoding="utf-8")
+    probe = tmp_path / "probe.html"
+    probe.write_text(page.replace("</body>", TABLE_PROBE + "</body>"), encoding="utf-8")
+    profile = tmp_path / "profile"
+    profile.mkdir()
+    r = subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu",
+                        "--no-first-run", "--disable-background-networking",
+                        "--host-resolver-rules=MAP * ~NOTFOUND", f"--user-data-dir={profile}",
+                        "--window-size=900,1200", "--virtual-time-budget=15000", "--dump-dom",
+                        probe.as_uri()], capture_output=True, text=True, timeout=180)
+    m = re.search(r"PROBE(\{.*?\})PROBE", r.stdout)
+    assert m, f"no probe result from chromium (exit {r.returncode}): {r.stderr[-2000:]}"
+    seen = json.loads(m.group(1))
+    assert seen["innerWidth"] == 900
+    assert seen["bad"] == [] and seen["scrollWidth"] <= 900, seen

@@ -18,7 +18,7 @@ import numpy as np
 from ..rights import Action
 from . import style
 from .sensitivity import SETTLED
-from .tables import Fmt, breakeven_text
+from .tables import Fmt, breakeven_text, commits, is_modal, mode_shares
 
 # matplotlib is imported through .style (Agg) and only inside this module's functions below.
 
@@ -76,7 +76,7 @@ def _action_styles(a) -> dict:
 def _action_text(a, label: str) -> str:
     """A decision map's action label for a reader: exercising a defer right means investing."""
     for r in a.rights:
-        if r.type == "defer" and label == r.name:
+        if commits(r) and label == r.name:
             return f"invest now ({r.name})"
     return label
 
@@ -234,11 +234,18 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
             continue
         ax.contourf(dm.times, dm.values, np.where(dm.codes == k, 1.0, 0.0), levels=[0.5, 1.5],
                     colors="none", hatches=[hatch], zorder=2)
+    thin = _thin_columns(ax, dm, looks, t_edges, v_edges)
     handles = [Patch(facecolor=looks[k][0], edgecolor=style.MUTED, hatch=looks[k][1],
                      label=_wrap(_action_text(a, lab), 34)) for k, lab in enumerate(dm.actions)]
     handles.append(Patch(facecolor="white", edgecolor=style.MUTED,
                          label=_wrap("no choice here (outside the rights' windows or the "
                                      "tree)", 34)))
+    if thin:
+        from matplotlib.lines import Line2D
+
+        handles.append(Line2D([], [], marker="v", markersize=3.5, color=style.INK,
+                              linestyle="none", label=_wrap("a single exercise date (its column "
+                                                            "drawn wider than one step)", 34)))
     for k_line, (what, word, pts, xs, ys) in enumerate(_threshold_lines(a, dm.state)):
         line, = ax.plot(xs, ys, color=style.INK, linewidth=1.1,
                         linestyle=style.DASHES[(k_line + 1) % len(style.DASHES)],
@@ -249,12 +256,56 @@ def _draw_decision_map(fig, a, dm, f: Fmt):
     _today_marker(ax, a.present_value, f)
     cols = np.flatnonzero((dm.codes >= 0).any(axis=0))
     last = float(dm.times[cols[-1]]) if cols.size else float(dm.times[-1])
-    ax.set_xlim(0, min(float(dm.times[-1]), last + max(0.25, 0.04 * last)))
+    right = min(float(dm.times[-1]), last + max(0.25, 0.04 * last))
+    if cols.size:                          # the last column with a choice drawn whole
+        right = max(right, float(t_edges[cols[-1] + 1]))
+        if thin and cols[-1] == len(dm.times) - 1:
+            right = max(right, last + 0.5 * max(MIN_COLUMN * (t_edges[-1] - t_edges[0]),
+                                                float(np.median(np.diff(t_edges)))))
+    ax.set_xlim(0, right)
     _log_axis(ax, dm.values[0], dm.values[-1])
     ax.set_xlabel("Years from today")
     ax.set_ylabel(f"Project value ({f.unit_label}, log scale)")
     ax.grid(False)
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
+
+
+MIN_COLUMN = 0.012     # share of the time axis: the narrowest a date with an exercise is drawn
+
+
+def _thin_columns(ax, dm, looks, t_edges, v_edges):
+    """Dates whose column is narrower than MIN_COLUMN of the time axis (a one-step bermudan
+    date on a fine grid) and that hold an exercise are drawn again as bars of that width, fill
+    and hatch, above the mesh, with a tick on the top edge: they stay visible at any
+    steps_per_year."""
+    span = float(t_edges[-1] - t_edges[0]) or 1.0
+    widths = np.diff(t_edges)
+    typical = float(np.median(widths)) if widths.size else span
+    w = max(MIN_COLUMN * span, typical)
+    drawn = False
+    for col in np.flatnonzero(widths < min(w, 0.75 * typical)):
+        column = dm.codes[:, col]
+        if not np.any(column > 0):
+            continue
+        if any(0 <= c < dm.codes.shape[1] and widths[c] >= 0.75 * typical
+               and np.array_equal(dm.codes[:, c], column) for c in (col - 1, col + 1)):
+            continue                      # a wide neighbour shows the same decisions
+        t = float(dm.times[col])
+        start = 0
+        for r in range(1, len(column) + 1):
+            if r < len(column) and column[r] == column[start]:
+                continue
+            k = int(column[start])
+            if k > 0:
+                fill, hatch = looks[k]
+                ax.bar(t, v_edges[r] - v_edges[start], bottom=v_edges[start], width=w,
+                       color=fill, hatch=hatch or None, edgecolor="#555555", linewidth=0.3,
+                       zorder=3)
+            start = r
+        ax.plot([t], [1.0], marker="v", markersize=3.5, color=style.INK, linestyle="none",
+                transform=ax.get_xaxis_transform(), clip_on=False, zorder=5)
+        drawn = True
+    return drawn
 
 
 def _map_has_thresholds(a, dm) -> bool:
@@ -299,14 +350,56 @@ def _draw_chance(fig, a, f: Fmt):
             xs, ys = r.use_years, np.asarray(getattr(r, attr)) * 100.0
             ax.plot(xs, ys, **style.line_style(k), marker=style.MARKERS[k % len(style.MARKERS)],
                     markevery=max(1, len(xs) // 8), markersize=3.5,
-                    label=_wrap(r.name + (" (in another mode)" if a.project.right(r.name).modal
-                                          else ""), 52))
+                    label=_wrap(r.name + _chance_note(r), 52))
         ax.set_title(title, fontsize=8.5, loc="left")
         ax.set_xlim(0, a.lattice.horizon)
         ax.set_ylim(-2, 102)
         ax.set_xlabel("Years from today")
     axes[0].set_ylabel("Chance the right has been used (%)")
     fig.legend(*axes[0].get_legend_handles_labels(), loc="outside lower center", ncols=2)
+
+
+def _chance_note(r) -> str:
+    """What a switch's line counts: switched at least once (results with mode shares), else
+    the older measure, the chance of being away from the start mode."""
+    if not is_modal(r):
+        return ""
+    return " (switched at least once)" if mode_shares(r) else " (in another mode)"
+
+
+def _draw_modes(fig, a, f: Fmt):
+    """One row per switch right: the share of paths in each mode over time, real-world on the
+    left, risk-neutral on the right, stacked (they add up to the chance of operating)."""
+    switches = [r for r in a.rights if mode_shares(r)]
+    axes = fig.subplots(len(switches), 2, sharex=True, sharey=True, squeeze=False)
+    for row, r in zip(axes, switches):
+        shares = mode_shares(r)
+        xs = np.asarray(r.use_years)
+        for ax, pick, title in ((row[0], 1, "real-world"), (row[1], 0, "risk-neutral")):
+            ys = [np.asarray(shares[m][pick]) * 100.0 for m in shares]
+            rest = np.clip(100.0 - np.sum(ys, axis=0), 0.0, 100.0)
+            polys = ax.stackplot(xs, *ys, rest,
+                                 labels=list(shares) + ["not operating (not yet invested, "
+                                                        "or abandoned)"],
+                                 linewidth=0.4, edgecolor="white",
+                                 colors=[style.FILLS[1 + k % (len(style.FILLS) - 1)]
+                                         for k in range(len(ys))] + ["#e9e9e9"])
+            for k, poly in enumerate(polys[:-1]):
+                poly.set_hatch(style.HATCHES[1 + k % (len(style.HATCHES) - 1)])
+            ax.set_title(_wrap(f"{r.name}: {title}", 48), fontsize=8.5, loc="left")
+            ax.set_xlim(0, a.lattice.horizon)
+            ax.set_ylim(0, 100)
+        row[0].set_ylabel("Chance of being in mode (%)")
+        handles, labels = row[1].get_legend_handles_labels()
+        row[1].legend(handles, [_wrap(t, 18) for t in labels], loc="upper left",
+                      bbox_to_anchor=(1.01, 1.0), borderaxespad=0, title="mode",
+                      title_fontsize=7.5)
+    for ax in axes[-1]:
+        ax.set_xlabel("Years from today")
+
+
+def _modes_height(a) -> float:
+    return 0.4 + 2.1 * sum(1 for r in a.rights if mode_shares(r))
 
 
 # ------------------------------------------------------------------------ value fan
@@ -406,7 +499,7 @@ def _draw_convergence(fig, a, s, f: Fmt):
     ax.xaxis.set_major_locator(FixedLocator(c.steps_per_year))
     ax.xaxis.set_minor_locator(NullLocator())
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
-    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.2f}"))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f.money(v)))
     ax.set_xlabel("Lattice steps per year (log scale)")
     ax.set_ylabel(f"Expanded NPV ({f.unit_label})")
     ax.legend(loc="best")
@@ -530,7 +623,7 @@ def charts(a, s) -> list[Chart]:
         f"{money(a.expanded_npv)}; dashed outlines show each right valued alone (with any right "
         f"it requires), and the "
         f"interaction between the rights is {money(a.interaction)}.",
-        max(2.4, 0.42 * (len(a.rights) + 2) + 1.0), lambda fig: _draw_bridge(fig, a, f))]
+        max(2.4, 0.36 * (len(a.rights) + 2) + 1.0), lambda fig: _draw_bridge(fig, a, f))]
     flows = bool(_flow_years(a.project))
     k_map = 0
     for dm in a.decision_maps:
@@ -560,8 +653,17 @@ def charts(a, s) -> list[Chart]:
             "chance_of_use", "Chance that each right has been used",
             "Read the chance that each right has been used by each date: on the left under the "
             "real-world drift (what to expect), on the right under the risk-neutral measure "
-            "used for valuation (not a forecast).",
+            "used for valuation (not a forecast)." + _switch_caption(a),
             2.8 + 0.22 * math.ceil(len(a.rights) / 2), lambda fig: _draw_chance(fig, a, f)))
+    if any(mode_shares(r) for r in a.rights):
+        out.append(Chart(
+            "switch_modes", "Share of paths in each mode of a switch right",
+            "Read the chance of being in each mode on each date, on the left under the "
+            "real-world drift, on the right risk-neutral; the grey band on top is the chance "
+            "that the project is not operating (not yet invested, or abandoned). The "
+            "chance-of-use figure shows instead the chance of having switched at least once, "
+            "which never falls.",
+            _modes_height(a), lambda fig: _draw_modes(fig, a, f)))
     out.append(Chart(
         "value_fan", "Project value fan (real-world)",
         "Percentile bands of project value over time under the real-world drift, from today's "
@@ -593,6 +695,17 @@ def charts(a, s) -> list[Chart]:
             2.8, lambda fig: _draw_convergence(fig, a, s, f)))
     out.append(_states_chart(a, f))
     return out
+
+
+def _switch_caption(a) -> str:
+    sw = [r for r in a.rights if is_modal(r)]
+    if not sw:
+        return ""
+    if all(mode_shares(r) for r in sw):
+        return (" A switch right counts as used once it has left its start mode at least once "
+                "(the line never falls); where each path is on each date is in the figure of "
+                "mode shares.")
+    return " A switch right's line is the chance of being in a mode other than its start mode."
 
 
 def _states_chart(a, f: Fmt) -> Chart:

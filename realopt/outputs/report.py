@@ -26,10 +26,13 @@ from pathlib import Path
 from .. import CAUTION, __version__
 from ..errors import RealoptError
 from .sensitivity import DEFAULT_MOVES, Moves, analyse
-from .tables import (Fmt, breakeven_text, chance_by_year, csv_tables, inputs_rows,
-                     lattice_rows)
+from .tables import (ALONE_COLUMN, VALUE_COLUMN, Fmt, breakeven_text, chance_by_year,
+                     csv_tables, inputs_rows, lattice_rows, mode_share_years, mode_shares,
+                     is_modal, no_negative_zero)
 
 MARKER = ".realopt-report"
+WARN_HEAD = "Read these numbers with the following warnings:"
+MIN_FIGURE_SCALE = 0.72           # a figure shrinks this far to stay on a part-filled page
 PDF_DPI = 200                      # figures in the PDF (figures/*.png keep print resolution)
 CONVENTIONS = (
     "Years are counted from today (t = 0). Cash flows are paid at their dates; a decision at a "
@@ -54,6 +57,7 @@ class Built:
     fmt: Fmt
     charts: list                                       # those known so far, in reading order
     pdf_pages: list = field(default_factory=list)      # page headings, in order
+    pdf_fill: list = field(default_factory=list)       # share of each page's height used
     complete: bool = False                              # charts include the sensitivity ones
     extra: list = field(default_factory=list)          # added figures (e.g. a sweep's)
 
@@ -214,7 +218,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> 
                 "source": None if source is None else str(source),
                 "figures": [c.slug + ".png" for c in b.charts + b.extra],
                 "tables": [t + ".csv" for t in tables], "xlsx": bool(xlsx),
-                "pdf_pages": b.pdf_pages}
+                "pdf_pages": b.pdf_pages, "pdf_fill": b.pdf_fill}
     (tmp / MARKER).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")
 
 
@@ -344,21 +348,90 @@ class _Drawer:
 # ------------------------------------------------------------------------ shared content
 def _headline_rows(a):
     """(label, value, value alone) of the headline table: the Appraisal's own summary()."""
+    def val(x):
+        return None if x is None or x != x else float(x)
+
     df = a.summary()
-    return [(item, row["value"], None if row["standalone_value"] != row["standalone_value"]
-             else row["standalone_value"]) for item, row in df.iterrows()]
+    return [(item, val(row["value"]), val(row["standalone_value"]))
+            for item, row in df.iterrows()]
+
+
+def _headline_blocks(a, f: Fmt) -> list:
+    """What page one must say beside the headline numbers: the base project when it is not
+    the plain one, the standard error of a simulated V0, and the headline warnings."""
+    out = []
+    base = (getattr(a, "base", "") or "").strip()
+    if base and _base_is_not_plain(a.project):
+        out.append(("p", base if base.lower().startswith("base project")
+                    else f"Base project: {base}"))
+    se = getattr(a, "present_value_stderr", None)
+    if se:                                 # 0 or None: V0 is exact
+        out.append(("p", f"Present value of the operating project "
+                         f"{f.money_unit(a.present_value)} \u00b1 {f.money(se)} (standard "
+                         "error of the simulation estimate)."))
+    warn = list(getattr(a, "headline_warnings", ()) or ())
+    if warn:
+        out.append(("warn", warn))
+    return out
+
+
+def _base_is_not_plain(project) -> bool:
+    """Whether some switch right starts in a mode other than the plain project (scale 1, no
+    fixed yearly flow): then the base every subset values is not the file's cash flows alone
+    and page one says what it is."""
+    for r in project.rights:
+        if r.modal:
+            m = next((m for m in r.modes if m.name == r.start), None)
+            if m is not None and (m.scale != 1.0 or m.fixed != 0.0):
+                return True
+    return False
 
 
 def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
     facts = [("Window", f"years {f.year(r.window[0])} to {f.year(r.window[1])}, {r.exercise}"),
              ("Shapley share", f.money_unit(r.shapley_value)),
-             ("Value alone", f.money_unit(r.standalone_value))]
+             ("Value of the right alone", f.money_unit(r.standalone_value))]
     if r.use_years:
-        facts.append((f"Chance of use by year {f.year(r.use_years[-1])}",
+        what = ("Chance of having switched at least once by year" if is_modal(r)
+                and mode_shares(r) else "Chance of use by year")
+        facts.append((f"{what} {f.year(r.use_years[-1])}",
                       f"{f.pct(r.use_real_world[-1])} real-world, "
                       f"{f.pct(r.use_risk_neutral[-1])} risk-neutral"))
+        for m, (rn, rw) in mode_shares(r).items():
+            facts.append((f"Share of paths in mode '{m}' at year {f.year(r.use_years[-1])}",
+                          f"{f.pct(rw[-1])} real-world, {f.pct(rn[-1])} risk-neutral"))
     facts.append(("What the chance counts", r.use_measure))
     return facts
+
+
+def _mode_share_blocks(a, f: Fmt) -> list:
+    """For each switch right with mode shares: a table of the share of paths in each mode at
+    each whole year, real-world and risk-neutral, labelled for what it counts."""
+
+    out = []
+    for r in a.rights:
+        shares = mode_shares(r)
+        if not shares:
+            continue
+        modes = list(shares)
+        picks = mode_share_years(r)
+        if not picks:
+            continue
+        out.append(("p", f"{r.name}: share of paths in each mode on each date (the project "
+                         "invested and not abandoned), real-world and risk-neutral. This is "
+                         "where the paths are, not the chance of having switched:"))
+        rows = []
+        for k in picks:
+            row = [f.year(r.use_years[k])]
+            for m in modes:
+                rn, rw = shares[m][0][k], shares[m][1][k]
+                row += [(rw, f.pct(rw)), (rn, f.pct(rn))]
+            rows.append(row)
+        heads = ["Year"]
+        for m in modes:
+            heads += [f"{m}, real-world", f"{m}, risk-neutral"]
+        out.append(("table", heads, rows, tuple(range(1, len(heads))), None))
+    return out
 
 
 def _files_text() -> str:
@@ -387,8 +460,11 @@ table { border-collapse: collapse; width: 100%%; margin: 2mm 0 3mm; font-size: 8
 th, td { text-align: left; padding: 1.2mm 2mm; border-bottom: 1px solid %(grid)s;
          vertical-align: top; overflow-wrap: anywhere; }
 th { border-bottom: 1.5px solid %(muted)s; font-weight: bold; }
-td.num, th.num { text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
+td.num { white-space: nowrap; }
+th.num { white-space: normal; overflow-wrap: anywhere; }
 tr.total td { font-weight: bold; border-top: 1.5px solid %(muted)s; }
+.headline-warnings ul { margin: 1mm 0 0; padding-left: 5mm; }
 .card { border: 1px solid %(grid)s; border-radius: 2mm; padding: 1mm 3mm 2mm; margin: 2mm 0; }
 .card p.rule { margin: 1mm 0; }
 .card table { font-size: 8.5pt; margin: 1mm 0 0; }
@@ -407,7 +483,7 @@ footer { margin-top: 8mm; font-size: 8.5pt; color: %(muted)s; }
 
 
 def _e(x) -> str:
-    return html.escape(str(x), quote=True)
+    return html.escape(no_negative_zero(str(x)), quote=True)
 
 
 def _num_td(x, text: str) -> str:
@@ -451,14 +527,19 @@ def _sections(b: Built):
     money = f.unit_label
     rows, totals = [], []
     for label, value, alone in _headline_rows(a):
-        rows.append((label, (value, f.money(value)),
+        rows.append((label, (value, f.money(value)) if value is not None else (None, ""),
                      (alone, f.money(alone)) if alone is not None else (None, "")))
         totals.append(label in ("Static NPV", "Expanded NPV"))
     out = []
-    out.append(("Decision today", [
-        ("decision", a.decision_today),
-        ("table", ["", f"Value ({money})", f"Right alone ({money})"], rows, (1, 2), totals),
-        ("figure", "value_bridge")]))
+    today = [("decision", a.decision_today)] + _headline_blocks(a, f)
+    today.append(("table", ["", f"{VALUE_COLUMN} ({money})", f"{ALONE_COLUMN} ({money})"],
+                  rows, (1, 2), totals))
+    if a.rights:
+        today.append(("note", "Reading down either column gives the flexibility value: the "
+                              "Shapley shares of the rights add up to it, and so do the "
+                              "rights' values alone plus the interaction between them."))
+    today.append(("figure", "value_bridge"))
+    out.append(("Decision today", today))
     card = [("p", "Each right's rule in plain words, read from the optimal exercise policy on "
                   "the lattice, with the numbers it rests on.")]
     card += [("card", r) for r in a.rights]
@@ -477,6 +558,7 @@ def _sections(b: Built):
                                               for n in names])
             card.append(("table", ["Year"] + names, rows, tuple(range(1, len(names) + 1)),
                          None))
+    card += _mode_share_blocks(a, f)
     out.append(("Decision rule card", card))
     when = [("figure", x) for x in slugs if x.startswith("decision_map_")]
     from .figures import single_action_states
@@ -486,7 +568,8 @@ def _sections(b: Built):
         when.append(("note", "No decision map is drawn for " + "; ".join(
             f"\u201c{q}\u201d" for q in quiet) + ": no right is worth using from that state at "
             "any node of the lattice."))
-    when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use") if x in slugs]
+    when += [("figure", x) for x in ("exercise_thresholds", "chance_of_use", "switch_modes")
+             if x in slugs]
     out.append(("When to use each right", when))
     out.append(("Uncertainty in project value", [("figure", "value_fan")]))
     yield from out
@@ -577,6 +660,9 @@ def _html_block(b: Built, blk) -> str:
         return f'<div class="caution">{_e(blk[1])}</div>'
     if kind == "list":
         return "<ul>" + "".join(f"<li>{_e(x)}</li>" for x in blk[1]) + "</ul>"
+    if kind == "warn":
+        return (f'<div class="caution headline-warnings"><b>{_e(WARN_HEAD)}</b><ul>'
+                + "".join(f"<li>{_e(x)}</li>" for x in blk[1]) + "</ul></div>")
     if kind == "figure":
         return _figure_html(b, blk[1])
     if kind == "table":
@@ -625,6 +711,8 @@ def render_markdown(b: Built) -> str:
                 out += [f"> {blk[1]}", ""]
             elif kind == "list":
                 out += [f"- {x}" for x in blk[1]] + [""]
+            elif kind == "warn":
+                out += [f"> **{WARN_HEAD}**", ">"] + [f"> - {x}" for x in blk[1]] + [""]
             elif kind == "figure":
                 chart = b.chart(blk[1])
                 out += [f"![{chart.title}](figures/{chart.slug}.png)", "",
@@ -636,7 +724,7 @@ def render_markdown(b: Built) -> str:
                 r = blk[1]
                 out += [f"### {r.name} ({r.type})", "", r.rule, "",
                         _md_table(["", ""], _right_facts(r, f)), ""]
-    return "\n".join(out).rstrip() + "\n"
+    return no_negative_zero("\n".join(out).rstrip() + "\n")
 
 
 # ------------------------------------------------------------------------ PDF
@@ -665,6 +753,7 @@ class _Pages:
 
     def close(self):
         if self.fig is not None:
+            self.b.pdf_fill.append(round((A4[1] - MARGIN - self.y) / (A4[1] - 2 * MARGIN), 3))
             self._footer(self.fig)
             self.pdf.savefig(self.fig)
             self.fig = None
@@ -676,6 +765,10 @@ class _Pages:
         fig.text(1 - MARGIN / A4[0], 0.45 / A4[1], f"page {n}", fontsize=7, color="#6b6b6b",
                  ha="right")
 
+    def room(self) -> float:
+        """Inches left on the current page (0 before the first)."""
+        return 0.0 if self.fig is None else self.y - (MARGIN + 0.3)
+
     def need(self, height: float, heading: str):
         if self.fig is None or self.y - height < MARGIN + 0.3:
             self._new(heading)
@@ -683,7 +776,7 @@ class _Pages:
     def text(self, x: float, txt: str, size=8.5, weight="normal", color="#222222",
              ha="left", width_chars=None):
         """A wrapped paragraph, one text object per page it spans."""
-        lines = textwrap.wrap(txt, width_chars or int(100 * 8.5 / size)) or [""]
+        lines = textwrap.wrap(no_negative_zero(txt), width_chars or int(100 * 8.5 / size)) or [""]
         h = LINE * size / 8.5
         while lines:
             self.need(h, self.b.pdf_pages[-1] if self.b.pdf_pages else "")
@@ -705,18 +798,37 @@ class _Pages:
         h_max = A4[1] - 2 * MARGIN - 1.4
         if h > h_max:
             w, h = w * h_max / h, h_max
-        return w, h, textwrap.wrap(f"{chart.title}. {chart.caption}", 112)
+        return w, h, textwrap.wrap(no_negative_zero(f"{chart.title}. {chart.caption}"), 112)
+
+    def _shrink(self, chart) -> float:
+        """The scale (MIN_FIGURE_SCALE to 1) at which the figure and its caption fit in what
+        is left of this page; 0 when even the smallest does not (a new page then)."""
+        if self.fig is None:
+            return 0.0
+        w, h, caption = self._figure_size(chart)
+        room = self.y - (MARGIN + 0.3) - (0.15 + LINE * len(caption) + 0.15)
+        if room >= h:
+            return 1.0
+        k = room / h
+        return k if k >= MIN_FIGURE_SCALE else 0.0
 
     def figure_need(self, chart) -> float:
+        """The least height the figure needs to stay on this page (it may shrink to
+        MIN_FIGURE_SCALE where that keeps most of a page from being left empty)."""
         w, h, caption = self._figure_size(chart)
-        return h + 0.15 + LINE * len(caption) + 0.15
+        return h * MIN_FIGURE_SCALE + 0.15 + LINE * len(caption) + 0.15
 
     def figure(self, chart):
-        """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it."""
+        """The figure's PNG (figures/*.png, resampled to PDF_DPI) and its caption below it;
+        shrunk (down to MIN_FIGURE_SCALE, left-aligned) rather than leave most of a page
+        empty, else on a new page."""
         img = self.b.pixels(chart.slug)
         w, h, caption = self._figure_size(chart)
-        if self.fig is None or self.y - self.figure_need(chart) < MARGIN + 0.3:
+        k = self._shrink(chart)
+        if not k:
             self._new(chart.title)
+        else:
+            w, h = w * k, h * k
         ax = self.fig.add_axes((MARGIN / A4[0], (self.y - h) / A4[1], w / A4[0], h / A4[1]))
         ax.imshow(img, interpolation="none")
         ax.set_axis_off()
@@ -751,7 +863,7 @@ class _Pages:
         def cells(row, bold=False):
             out = []
             for k, c in enumerate(row):
-                t = c[1] if isinstance(c, tuple) else str(c)
+                t = no_negative_zero(c[1] if isinstance(c, tuple) else str(c))
                 chars = max(8, int(widths[k] * 72 / (size * (0.64 if bold else 0.56))))
                 out.append(textwrap.wrap(t, chars) or [""])
             return out
@@ -849,8 +961,9 @@ def write_pdf(b: Built, path: Path) -> None:
             first = blocks[0] if blocks else None
             keep = (pg.figure_need(b.chart(first[1]))
                     if first and first[0] == "figure" else 0.9)
-            pg.heading(heading, new_page=heading in ("Decision rule card",
-                                                     "Inputs and assumptions"), keep=keep)
+            fresh = heading == "Inputs and assumptions" or (
+                heading == "Decision rule card" and pg.room() < 0.4 * (A4[1] - 2 * MARGIN))
+            pg.heading(heading, new_page=fresh, keep=keep)
             for blk in blocks:
                 if blk[0] == "figure":
                     pg.figure(b.chart(blk[1]))
@@ -871,6 +984,11 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
         for item in blk[1]:
             pg.text(MARGIN, "- " + item, size=8.5)
         pg.gap()
+    elif kind == "warn":
+        pg.text(MARGIN, WARN_HEAD, size=8.5, weight="bold", color="#c2661c")
+        for item in blk[1]:
+            pg.text(MARGIN, "- " + item, size=8.5)
+        pg.gap()
     elif kind == "table":
         _, headers, rows, num_cols, _t = blk
         n = len(headers)
@@ -880,6 +998,8 @@ def _pdf_block(pg: _Pages, blk, f: Fmt, full: float) -> None:
             widths = [1.5, 2.1, full - 3.6]
         elif n == 2:
             widths = [2.4, full - 2.4]
+        elif n == 3 and tuple(num_cols) == (1, 2):          # the headline table
+            widths = [full - 2 * 1.9, 1.9, 1.9]
         else:
             first = full - 1.25 * (n - 1)
             widths = [first] + [1.25] * (n - 1)

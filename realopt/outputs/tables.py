@@ -14,6 +14,21 @@ import math
 
 import pandas as pd
 
+from ..rights.registry import RIGHT_TYPES
+from .text import no_negative_zero  # noqa: F401  (re-exported for the writers)
+
+
+def is_modal(r) -> bool:
+    """Whether a right of the results (RightValue) moves between modes (a switch, a shutdown):
+    asked of its registered type."""
+    cls = RIGHT_TYPES.get(r.type)
+    return bool(cls is not None and cls.modal)
+
+
+def commits(r) -> bool:
+    """Whether a right of the results is the commitment (a defer right), by its type."""
+    cls = RIGHT_TYPES.get(r.type)
+    return bool(cls is not None and cls.commits)
 
 
 class Fmt:
@@ -58,9 +73,16 @@ class Fmt:
 
 
 # --------------------------------------------------------------------------------------------
+VALUE_COLUMN = "Value; Shapley share for each right"
+ALONE_COLUMN = "Value of the right alone"
+
+
 def value_bridge(a) -> pd.DataFrame:
-    """The headline table: the Appraisal's own ``summary()``."""
-    return a.summary().reset_index()
+    """The headline table: the Appraisal's own ``summary()``, its columns named for what they
+    hold. Down ``value_or_shapley_share`` the rights add up to the flexibility value; down
+    ``value_of_the_right_alone`` the rights plus the interaction between them do too."""
+    return a.summary().reset_index().rename(columns={
+        "value": "value_or_shapley_share", "standalone_value": "value_of_the_right_alone"})
 
 
 def rights_table(a) -> pd.DataFrame:
@@ -91,6 +113,34 @@ def chance_of_use_table(a) -> pd.DataFrame:
             for r in a.rights for y, rw, rn in zip(r.use_years, r.use_real_world,
                                                    r.use_risk_neutral)]
     return pd.DataFrame(rows, columns=["right", "year", "real_world", "risk_neutral"])
+
+
+def mode_shares(r) -> dict:
+    """A switch right's share of paths in each mode at its use_years: mode -> (risk-neutral,
+    real-world) tuples; {} for other rights (and for results that do not carry them)."""
+    return dict(getattr(r, "mode_shares", None) or {})
+
+
+def mode_share_table(a) -> pd.DataFrame:
+    """Share of paths in each mode of each switch right at each sampled date (the project
+    operating); not the chance of having switched, which is in chance_of_use."""
+    rows = [{"right": r.name, "mode": m, "year": y, "real_world": rw_k, "risk_neutral": rn_k}
+            for r in a.rights for m, (rn, rw) in mode_shares(r).items()
+            for y, rn_k, rw_k in zip(r.use_years, rn, rw)]
+    return pd.DataFrame(rows, columns=["right", "mode", "year", "real_world", "risk_neutral"])
+
+
+def mode_share_years(r) -> list[int]:
+    """Indices into r.use_years of the sampled date nearest each whole year."""
+    years = list(r.use_years)
+    if not years:
+        return []
+    out = []
+    for whole in range(1, int(math.floor(years[-1] + 1e-9)) + 1):
+        k = min(range(len(years)), key=lambda i: abs(years[i] - whole))
+        if k not in out:
+            out.append(k)
+    return out
 
 
 def chance_by_year(a) -> pd.DataFrame:
@@ -277,6 +327,8 @@ def csv_tables(a, s, f: Fmt) -> dict[str, pd.DataFrame]:
         "rights": rights_table(a),
         "thresholds": thresholds_table(a),
         "chance_of_use": chance_of_use_table(a),
+        **({"mode_shares": mode_share_table(a)} if any(mode_shares(r) for r in a.rights)
+           else {}),
         "value_fan": fan_table(a),
         "sensitivity": sensitivity_table(s),
         "break_even": breakeven_table(s),

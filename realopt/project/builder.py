@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from ..errors import ProjectError
 from .crosschecks import CrossChecks
 from .drivers_section import DriverSections
@@ -35,6 +36,7 @@ class _Builder(MarketSections, UnderlyingSection, DriverSections, RightsSection,
                 self.missing((key,), f"a {key} section ({what})",
                              "add it; see the project file reference in the README")
         sec = {k: top.get(k, _ABSENT) for k in TOP_KEYS}
+        simulation_keys.read_valuation(self, top)
         name, currency, unit = self.project_section(sec["project"])
         form = self.underlying_form(sec["underlying"])
         market = self.market(sec["market"], form)
@@ -42,11 +44,13 @@ class _Builder(MarketSections, UnderlyingSection, DriverSections, RightsSection,
         underlying = self.underlying(sec["underlying"], form, lattice)
         investment = self.investment(sec["investment"], market)
         rights = self.rights(sec["rights"], lattice)
+        simulation_keys.finish(self, underlying, rights)
         if self.problems:
             raise ProjectError(sorted(self.problems, key=lambda p: (p.line or 0, p.column or 0)))
         project = model.Project(name=name, market=market, underlying=underlying,
                                 investment=investment, rights=rights, lattice=lattice,
-                                currency=currency, unit=unit, source=self.file)
+                                currency=currency, unit=unit, source=self.file,
+                                valuation=self.valuation, simulation=self.simulation_spec)
         # the model's own rules (realopt.validate), located in the file; the sections read the
         # same rules, so this finds nothing unless a section forgot one
         for issue in validate.issues(project):

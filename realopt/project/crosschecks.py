@@ -10,10 +10,24 @@ from .paths import Index
 
 
 class CrossChecks:
-    def links(self, path, rights):
-        """requires/excludes: known names, not self, requires never an abandon right, no cycle."""
-        index = {r.name: i for i, r in enumerate(rights)}
-        names = list(index)
+    def links(self, path, rights, at=None, known=None):
+        """requires/excludes: known names, not self, requires never an abandon right, no cycle.
+        ``at``: each right's index in the file's list; ``known``: every name in the file (when
+        some rights failed to build: only the spelling of the names is checked then)."""
+        at = list(range(len(rights))) if at is None else at
+        index = {r.name: k for k, r in enumerate(rights)}
+        names = list(index) if known is None else list(dict.fromkeys(known))
+        if known is not None:
+            for k, r in enumerate(rights):
+                for key in ("requires", "excludes"):
+                    for j, target in enumerate(getattr(r, key)):
+                        if target not in names:
+                            hint = difflib.get_close_matches(target, names, n=1)
+                            self.bad(path + (Index(at[k]), key, Index(j)),
+                                     f'"{target}", which is not the name of a right',
+                                     f"one of: {', '.join(names)}",
+                                     f"did you mean {hint[0]}?" if hint else "check the spelling")
+            return
         for i, r in enumerate(rights):
             if r.commits and r.requires:
                 self.bad(path + (Index(i), "requires"), f"requires on the defer right {r.name}",

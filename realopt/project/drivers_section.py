@@ -7,6 +7,7 @@ import keyword
 import re
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from .paths import Index, describe
 from .primitives import _optional_module
 
@@ -40,6 +41,7 @@ class DriverSections:
             self.bad(path + ("years",), describe(y), "[first, last] cash-flow years, e.g. [1, 15]")
         drivers = self.drivers(path + ("drivers",), d["drivers"])
         names = {dr.name: dr for dr in drivers} if drivers else {}
+        self.driver_names = names
         corr = self.correlation(path + ("correlation",), d.get("correlation"), names)
         tax = 0.0
         if d.get("tax_rate") is not None:
@@ -91,10 +93,16 @@ class DriverSections:
             return None
         need = {"gbm": ("start", "volatility"),
                 "mean_reverting": ("start", "long_run", "speed", "volatility")}[proc]
-        keys = ("process",) + need + (("drift",) if proc == "gbm" else ())
+        keys = ("process",) + need + (("drift",) if proc == "gbm" else ()) + ("risk_neutral",)
         self.mapping(path, spec, keys, f"a {proc} driver")
         vals = {}
-        for k in keys[1:]:
+        rn = None
+        if spec.get("risk_neutral") is not None:
+            rn = simulation_keys.risk_neutral(self, path + ("risk_neutral",),
+                                              spec["risk_neutral"], proc)
+            if rn is None:
+                return None
+        for k in keys[1:-1]:
             if k not in spec:
                 if k == "drift":
                     vals[k] = 0.0
@@ -105,7 +113,7 @@ class DriverSections:
             vals[k] = self.field(path + (k,), spec[k], model.Driver, k)
         if any(v is None for v in vals.values()):
             return None
-        return model.Driver(name=name, process=proc, **vals)
+        return model.Driver(name=name, process=proc, risk_neutral=rn, **vals)
 
     def correlation(self, path, value, drivers):
         if value is None:

@@ -5,9 +5,10 @@ from __future__ import annotations
 from ..rights.registry import right_keys
 
 VOLATILITY_WARN = 1.5             # yearly sigma above which the loader warns
-RATE_WARN = 1.0                   # a yearly rate above 100% is probably a percentage typo
+RATE_WARN = 1.0                   # a yearly rate above 100% is a percentage typo: refused
 
-TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights")
+TOP_KEYS = ("project", "market", "underlying", "investment", "lattice", "rights",
+            "valuation", "simulation")
 PROJECT_KEYS = ("name", "currency", "unit")
 MARKET_KEYS = ("risk_free_rate", "compounding", "discount_rate")
 CASH_FLOW_KEYS = ("cash_flows", "terminal_value", "flow_timing")

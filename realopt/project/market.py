@@ -47,8 +47,13 @@ class MarketSections:
                 continue
             r = self.field(path + (key,), d[key], model.Market, key)
             if r is not None and r > RATE_WARN:
-                self.warn(path + (key,), f"{r:g} is a rate above 100% a year; if you meant "
-                          f"{r:g}%, write {r / 100:g}")
+                # 4 or 9.5 is a percentage written without its sign: refused at the key, before
+                # the lattice would give advice about steps and volatility for a 400% rate
+                self.bad(path + (key,), f"{r:g}, a rate of {r * 100:,.0f}% a year",
+                         f"{validate.rule_for(model.Market, key).expected} as a fraction, at "
+                         "most 1 (0.035 for 3.5%)",
+                         f"did you mean {r / 100:g}? Write {r / 100:g} for {r:g}%")
+                r = None
             rates[key] = r
         rf = rates.get("risk_free_rate")
         dr = rates.get("discount_rate", rf)

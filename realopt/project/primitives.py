@@ -9,6 +9,7 @@ import math
 from pathlib import Path
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from ..errors import Problem
 from .paths import Index, _float_text, describe, format_path
 from .reading import Tree
@@ -36,6 +37,8 @@ class Primitives:
         self.warnings: list[str] = []
         self._reported = {p.key for p in tree.problems}   # refused by the reader already
         self._typos: set = set()                          # (mapping path, key it suggests)
+        self.valuation, self.simulation_spec = "lattice", None   # see realopt.project_simulation
+        self.driver_names: dict = {}
 
     # ---- reporting -------------------------------------------------------------------------
 
@@ -72,8 +75,22 @@ class Primitives:
     def warn(self, path, text):
         line, _, note = self._where(path, "value")
         where = f"{self.file}:{line}" if line else self.file
+        name = self._right_name(path)
+        if name and not text.startswith(name):
+            text = f"{name}: {text}"           # a warning names the right it concerns
         self.warnings.append(f"{where}: {format_path(path)}: {text}"
                              + (f" (from {note})" if note else ""))
+
+    def _right_name(self, path) -> str:
+        """The name of the right at rights[i] that ``path`` lies in ('' if none)."""
+        if len(path) < 2 or path[0] != "rights" or not isinstance(path[1], Index):
+            return ""
+        items = self.tree.data.get("rights") if isinstance(self.tree.data, dict) else None
+        if not isinstance(items, list) or not 0 <= int(path[1]) < len(items):
+            return ""
+        item = items[int(path[1])]
+        name = item.get("name") if isinstance(item, dict) else None
+        return name.strip() if isinstance(name, str) else ""
 
     # ---- shapes ----------------------------------------------------------------------------
 
@@ -166,6 +183,9 @@ class Primitives:
         expected = (f"{what}{sign}: a number, a mapping {{year: amount}} (linear between the "
                     "years, flat beyond), or {start: amount, growth: yearly rate}")
         ge = 0.0 if nonneg else None
+        if isinstance(value, str) and simulation_keys.is_simulation(self) \
+                and _float_text(value.strip().replace(" ", "")) is None:
+            return simulation_keys.money_formula(self, path, value, what)
         if isinstance(value, dict):
             if not value:
                 self.bad(path, "an empty mapping", expected)

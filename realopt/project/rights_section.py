@@ -5,10 +5,12 @@ rights are checked in crosschecks.py."""
 from __future__ import annotations
 
 from .. import model, validate
+from .. import project_simulation as simulation_keys
 from ..rights.registry import right_type
 from .keys import COMMON_RIGHT_KEYS, RIGHT_KEYS
 from .paths import Index, describe
 from .primitives import _ABSENT
+
 
 class RightsSection:
     def rights(self, value, lattice):
@@ -21,7 +23,7 @@ class RightsSection:
                 fix = "start each right with '- name: ...' so that rights is a list"
             self.bad(path, describe(value), "a list of rights, each starting with '- name:'", fix)
             return None
-        out, ok, seen = [], True, {}
+        out, ok, seen, at = [], True, {}, []
         for i, item in enumerate(value):
             r = self.right(path + (Index(i),), item)
             if r is None:
@@ -35,14 +37,21 @@ class RightsSection:
                 continue
             seen[r.name] = i
             out.append(r)
+            at.append(i)
         if not ok:
+            # names in requires/excludes are checked now too, so that every problem is
+            # reported in one pass; names of rights that failed to build count as known
+            known = [str(item["name"]).strip() for item in value
+                     if isinstance(item, dict) and isinstance(item.get("name"), (str, int, float))
+                     and not isinstance(item.get("name"), bool)]
+            self.links(path, out, at, known)
             return None
         defers = [i for i, r in enumerate(out) if r.commits]
         for i in defers[1:]:
             self.bad(path + (Index(i), "type"), "a second defer right", "at most one defer "
                      "right (one decision to commit)", "merge the waiting periods into one "
                      "window, or use bermudan dates")
-        self.links(path, out)
+        self.links(path, out, at)
         if lattice is not None and lattice.explicit:
             self.on_grid(path, out, lattice.step_years)
         return tuple(out)
@@ -87,9 +96,13 @@ class RightsSection:
         if None in (name, window, exercise, dates, requires, excludes, specific):
             return None
         if right_type(kind).commits and window[0] != 0:
-            self.bad(path + ("window",), f"a window starting at year {window[0]:g}",
+            fix = f"write window: [0, {window[1]:g}]"
+            if exercise == "bermudan":
+                fix += " and dates: [" + ", ".join(f"{d:g}" for d in sorted({0.0, *dates})) + "]"
+            self.bad(path + ("window",), f"a window starting at year {window[0]:g}, but the "
+                     "defer window must start at 0",
                      "a defer window starting at 0 (committing now is always one of the choices)",
-                     f"write window: [0, {window[1]:g}]")
+                     fix)
             return None
         cls = model.RIGHT_TYPES[kind]
         return cls(name=name, window=window, exercise=exercise, dates=dates, requires=requires,
@@ -136,6 +149,10 @@ class RightsSection:
                      "e.g. [0, 1, 2]")
             return None
         out, ok = [], True
+        commits = kind is not None and right_type(kind).commits
+        late_defer = commits and window and window[0] != 0
+        if late_defer:                 # the window's own problem says to start it at 0
+            window = (0.0, window[1])
         for i, v in enumerate(value):
             d = self.number(path + (Index(i),), v, validate.DATE.expected, **validate.DATE.bounds)
             if d is None:
@@ -150,7 +167,7 @@ class RightsSection:
         if not ok:
             return None
         out = sorted(set(out))
-        if kind is not None and right_type(kind).commits and out[0] != 0:
+        if commits and out[0] != 0 and not late_defer:
             self.bad(path, describe(value), "defer dates that include 0 (committing now is "
                      "always one of the choices)", "add 0 to the dates")
             return None
@@ -171,3 +188,7 @@ class RightsSection:
 
     def right_switch(self, path, item):
         return right_type("switch").parse(self, path, item)
+
+    def mode_cash_flow(self, path, value):
+        """A switch mode's own cash-flow formula (valuation: simulation); None after a problem."""
+        return simulation_keys.mode_cash_flow(self, path, value)

@@ -4,6 +4,7 @@ estimate block). Needs the lattice (explicit up/down factors make the volatility
 from __future__ import annotations
 
 from .. import model
+from .. import project_simulation as simulation_keys
 from .keys import (CASH_FLOW_KEYS, DRIVER_FORM_KEYS, FORECAST_KEYS, PV_KEYS, UNDERLYING_KEYS,
                    VOLATILITY_WARN)
 from .paths import describe
@@ -74,7 +75,10 @@ class UnderlyingSection:
                                             model.Underlying, "flow_timing")
         vol_path = path + ("volatility",)
         explicit = lattice is not None and lattice.explicit
-        if "volatility" not in d or d["volatility"] is None:
+        simulation_keys.check_underlying(self, d, form)
+        if simulation_keys.is_simulation(self):
+            pass                       # the drivers' own volatilities drive the simulation
+        elif "volatility" not in d or d["volatility"] is None:
             if not explicit:
                 self.missing(vol_path, "the yearly volatility of the project value (0.28 for 28%) "
                              "or an estimate block", "add volatility: 0.3, or give explicit "

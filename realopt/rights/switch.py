@@ -23,6 +23,7 @@ class Mode:
     name: str
     scale: float = 1.0
     fixed: float = 0.0
+    cash_flow: str | None = None     # own yearly cash-flow formula (valuation: simulation)
 
 
 def modes_raw(modes, k_fixed: float = 1.0, scaled: str | None = None, k_scale: float = 1.0):
@@ -67,16 +68,23 @@ class Switch(BaseRight):
             mp = modes_path + (mname,)
             mname = str(mname)
             spec = {} if spec is None else spec
-            if ld.mapping(mp, spec, ("scale", "fixed"), "a mode: {scale: multiplier of the "
-                          "base cash flows, fixed: yearly flow in this mode}") is None:
+            if ld.mapping(mp, spec, ("scale", "fixed", "cash_flow"), "a mode: {scale: "
+                          "multiplier of the base cash flows, fixed: yearly flow in this "
+                          "mode}") is None:
                 ok = False
                 continue
+            mcf = None
+            if spec.get("cash_flow") is not None:      # valuation: simulation (the loader's)
+                mcf = ld.mode_cash_flow(mp + ("cash_flow",), spec["cash_flow"])
+                if mcf is None:
+                    ok = False
+                    continue
             sc = ld.field(mp + ("scale",), spec.get("scale", 1.0), Mode, "scale")
             fx = ld.field(mp + ("fixed",), spec.get("fixed", 0.0), Mode, "fixed")
             if sc is None or fx is None:
                 ok = False
             else:
-                modes.append(Mode(name=mname, scale=sc, fixed=fx))
+                modes.append(Mode(name=mname, scale=sc, fixed=fx, cash_flow=mcf))
         known = [str(m) for m in raw]
         start = known[0]
         if item.get("start") is not None:

@@ -66,6 +66,8 @@ def main() -> None:
     print(f"{'import realopt.cli / then engine + loader':<52}{cli_s:>7} {engine_s:>7}")
     worst_median = 0.0
     for demo in sorted((ROOT / "projects").glob("*.yaml")):
+        if "\nvaluation: simulation" in demo.read_text():
+            continue        # simulation demos: timed by bench_simulation.py (seconds, not 1.5 s)
         rel = demo.relative_to(ROOT)
         best, med, worst = wall([py, "-m", "realopt", "appraise", str(rel)], n)
         worst_median = max(worst_median, med)
