@@ -24,8 +24,8 @@ import numpy as np
 from . import CAUTION, validate
 from .errors import ValuationError
 from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solve
-from .model import Project, Switch
-from .rights import (StateGraph, base_description, base_scale_fixed, build_state_graph,
+from .model import Project
+from .rights import (Action, StateGraph, base_description, base_scale_fixed, build_state_graph,
                      held_switches, prepared_rights, requirement_closure, structure_warnings,
                      usable_subset)
 from .underlying import ResolvedUnderlying, resolve
@@ -217,6 +217,9 @@ class _Valuer:
         self.base_value = (self.res.present_value if self.plain else
                            scale * self.res.present_value + fixed * self.grid.fixed_pv)
         self.static_npv = self.base_value - self.investment_pv
+        # no right can be used at any step (e.g. every window after the last cash-flow date):
+        # the expanded NPV is the static NPV exactly, not a lattice solve's rounding of it
+        self.live = any(exercise_steps(self.grid, r).any() for r in self.rights)
         self._cache: dict[frozenset, float] = {}
 
     def value(self, names) -> float:
@@ -232,6 +235,8 @@ class _Valuer:
         return self._cache[key]
 
     def _npv(self, sol: Solution, graph: StateGraph) -> float:
+        if not self.live:
+            return self.static_npv
         v = float(sol.values[graph.initial])
         invested_at_start = graph.states[graph.initial].invested
         return v - self.investment_pv if invested_at_start else v
@@ -364,7 +369,7 @@ def _defer_cost_warnings(rights, fmt) -> list[str]:
     """A defer right whose cost at year 0 differs from the investment's present value."""
     out = []
     for r in rights:
-        if r.kind == "defer" and r.cost.today is not None:
+        if r.commits and r.cost.today is not None:
             later = replace(r.cost, today=None)
             out.append(f"'{r.name}': committing today costs the investment's present value "
                        f"({fmt(r.cost.today)}), the same commitment as the static NPV; the "
@@ -396,31 +401,10 @@ def _money_format(project: Project):
 
 
 def _primary_states(r, graph: StateGraph) -> list[int]:
-    """States from which the rule of right ``r`` is read: the project invested, the rights that
-    ``r`` requires used, every switch at its start mode (for a switch: each mode in turn)."""
-    if r.kind == "defer":
-        return [graph.initial]
-    closure = requirement_closure(graph.rights, r.name) - {r.name}
-    used = frozenset(n for n in closure if graph_right(graph, n).kind in ("expand", "contract"))
-    switches = [s for s in graph.rights if isinstance(s, Switch)]
-    modes = [s.start for s in switches]
-    for n in closure:
-        s = graph_right(graph, n)
-        if isinstance(s, Switch):          # required switch: read it in its first other mode
-            k = switches.index(s)
-            modes[k] = next(m.name for m in s.modes if m.name != s.start)
-    if isinstance(r, Switch):
-        k = switches.index(r)
-        out = []
-        for m in r.modes:
-            mm = list(modes)
-            mm[k] = m.name
-            idx = graph.index(used=used, modes=tuple(mm))
-            if idx is not None:
-                out.append(idx)
-        return out
-    idx = graph.index(used=used, modes=tuple(modes))
-    return [] if idx is None else [idx]
+    """States from which the rule of right ``r`` is read (asked of its type: the project
+    invested, the rights that ``r`` requires used, every switch at its start mode; for a switch
+    each mode in turn)."""
+    return r.primary_states(graph, requirement_closure(graph.rights, r.name) - {r.name})
 
 
 def graph_right(graph: StateGraph, name: str):
@@ -485,16 +469,16 @@ def _thresholds(sol: Solution, state: int, edge_ids, steps) -> list[Threshold]:
     steps = np.asarray(steps, dtype=int)
     for e_id in edge_ids:
         e = graph.edges[e_id]
-        label = e.label if e.kind == "switch" else e.kind
+        label = rights[e.right].action_text(e)
         open_at = exercise_steps(grid, rights[e.right])
         found = {}
         at = steps[open_at[steps]].tolist()
         rows = [(i, g) for i in at if (g := pol.gains.get((state, i, e_id))) is not None]
         if rows:
             i_ = np.array([i for i, _ in rows])
-            lo = np.array([g[0] for _, g in rows])
-            hi = np.array([g[1] for _, g in rows])
-            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # None -> nan
+            lo = np.array([g.first for _, g in rows])
+            hi = np.array([g.last for _, g in rows])
+            g_ = np.array([g[2:] for _, g in rows], dtype=float)       # the gains; None -> nan
             smooth = np.array([(state, i + 1, e_id) in pol.gains for i, _ in rows])
 
             def value(j, ok):              # nodes_ex(i)[j] where ok, nan elsewhere
@@ -538,29 +522,11 @@ def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValu
     for s in prim:
         ids = [k for k in edge_ids if graph.edges[k].source == s]
         thr += _thresholds(sol, s, ids, range(grid.steps + 1))
-    mode_shares = None
-    if isinstance(r, Switch):
-        # first moves out of the start mode: a forward pass that drops the paths once they move
-        first = occupancy(sol, (grid.probability, grid.real_probability),
-                          absorb=set(edge_ids), at=())[1]
-        rn_use = np.cumsum(first[0][:, edge_ids].sum(axis=1))
-        rw_use = np.cumsum(first[1][:, edge_ids].sum(axis=1))
-        switches = [s for s in graph.rights if isinstance(s, Switch)]
-        k = switches.index(r)
-        mode_shares = {}
-        for m in r.modes:
-            cols = [i for i, s in enumerate(graph.states)
-                    if not s.abandoned and s.invested and s.modes[k] == m.name]
-            mode_shares[m.name] = tuple(
-                tuple(float(min(1.0, max(0.0, x))) for x in prob[:, cols].sum(axis=1))
-                for prob in occ[0])
-        measure = (f"chance of having switched out of '{r.start}' at least once by each date "
-                   "(never falls); the mode shares are the chance of being in each mode at "
-                   "each date (the project invested and not abandoned)")
-    else:
-        rn_use = np.cumsum(occ[1][0][:, edge_ids].sum(axis=1))
-        rw_use = np.cumsum(occ[1][1][:, edge_ids].sum(axis=1))
-        measure = "chance that the right has been exercised by each date"
+    # what the chance of use counts is the type's (a switch: first moves out of its start mode)
+    def first_uses(ids):              # a forward pass that drops the paths once they move
+        return occupancy(sol, (grid.probability, grid.real_probability), absorb=set(ids),
+                         at=())[1]
+    rn_use, rw_use, measure, mode_shares = r.chance_of_use(graph, edge_ids, occ, first_uses)
     side = _side(thr)
     return RightValue(
         name=r.name, type=r.kind, window=tuple(float(x) for x in r.window), exercise=r.exercise,
@@ -598,19 +564,8 @@ def _when(r) -> str:
 
 
 def _what(r, money: str) -> str:
-    if r.kind == "defer":
-        if r.cost.today is not None:
-            return (f"commit the investment (cost {money.format(r.cost.today)} today, then "
-                    f"{replace(r.cost, today=None).describe(money)})")
-        return f"commit the investment (cost {r.cost.describe(money)})"
-    if r.kind == "expand":
-        return f"expand scale by {r.scale:.0%} for {r.cost.describe(money)}"
-    if r.kind == "contract":
-        return f"contract scale by {r.scale:.0%} receiving {r.savings.describe(money)}"
-    if r.kind == "abandon":
-        return f"abandon for salvage {r.salvage.describe(money)}"
-    return "switch between modes " + ", ".join(m.name for m in r.modes)
-
+    """The rule's action in words (the type's own wording)."""
+    return r.what(money)
 
 def _plausible(grid: Grid, t: Threshold) -> bool:
     """Whether a threshold lies within 5 standard deviations of ln(project value) at its date
@@ -660,7 +615,7 @@ def _rule(r, thr, side, fmt, v0, use_rw, horizon) -> str:
     head = f"{r.name}: {_what(r, fmt.template)} {_when(r)}"
     tail = (f"; today project value is {fmt(v0)}; chance of use by year {horizon:g}: "
             f"{use_rw:.0%} (real-world)")
-    if isinstance(r, Switch):
+    if r.modal:                         # repeatable moves: one bound per move
         parts = []
         for action in dict.fromkeys(t.action for t in thr):
             ts = [t for t in thr if t.action == action and not t.never]
@@ -792,7 +747,7 @@ def _decision_maps(sol: Solution, graph: StateGraph, n_times=150, n_values=160):
     for s, runs in _policy_runs(pol).items():
         codes_used = [0] + sorted({int(c) for st in runs.values() for c in st[1] if c})
         labels = ["carry on" if graph.states[s].invested else "wait"] + [
-            (graph.edges[c - 1].right if graph.edges[c - 1].kind != "switch"
+            (graph.edges[c - 1].right if graph.edges[c - 1].action != Action.SWITCH
              else f"{graph.edges[c - 1].right}: {graph.edges[c - 1].label}")
             for c in codes_used[1:]]
         lookup = {c: k for k, c in enumerate(codes_used)}

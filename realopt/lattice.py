@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import NamedTuple
 from functools import cached_property
 
 import numpy as np
@@ -295,11 +296,27 @@ def exercise_steps(grid: Grid, right) -> np.ndarray:
         for t in right.dates:
             if right.window[0] - 1e-12 <= t <= right.window[1] + 1e-12:
                 mask[grid.step_of(t)] = True
-    if right.kind == "defer":           # committing today is always one of the choices
+    if right.commits:                   # committing today is always one of the choices
         mask[0] = True
     if grid.last_step is not None:
         mask[grid.last_step + 1:] = False
     return mask
+
+
+class Gains(NamedTuple):
+    """Where an edge is used at one step from one state: its exercise region is the nodes
+    ``first`` .. ``last``; the other fields are the gain of using it over carrying on (money,
+    valued at that date) at nodes first-2, first-1, first, last, last+1, last+2 (None outside
+    the step's nodes). realopt.appraisal reads the thresholds off them."""
+
+    first: int
+    last: int
+    below_far: float | None
+    below_near: float | None
+    at_first: float | None
+    at_last: float | None
+    above_near: float | None
+    above_far: float | None
 
 
 @dataclass
@@ -310,8 +327,8 @@ class Policy:
     are absent (a step where it has a choice and carries on everywhere holds ``()``)."""
 
     moves: dict = field(default_factory=dict)
-    # (state, step, edge) -> (first, last node of its exercise region, gains over carrying on at
-    # nodes first-2, first-1, first, last, last+1, last+2; None outside the slice)
+    # (state, step, edge) -> Gains (the exercise region's first and last node, gains over
+    # carrying on either side of it)
     gains: dict = field(default_factory=dict)
 
     def actions(self, state: int, step: int) -> np.ndarray:
@@ -355,15 +372,16 @@ def _compile_edges(grid: Grid, graph: StateGraph, rights_by_name, rows):
     return per_step
 
 
-def _gains_around(lo: int, hi: int, cand, carry) -> tuple:
-    """(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside the slice; gain =
+def _gains_around(lo: int, hi: int, cand, carry) -> Gains:
+    """Gains(lo, hi, gain at lo-2, lo-1, lo, hi, hi+1, hi+2), None outside the slice; gain =
     cand - carry (cand: a number or an array over the slice's nodes)."""
     near, far = slice(max(lo - 2, 0), lo + 1), slice(hi, hi + 3)
     if isinstance(cand, np.ndarray):
         below, above = (cand[near] - carry[near]).tolist(), (cand[far] - carry[far]).tolist()
     else:
         below, above = (cand - carry[near]).tolist(), (cand - carry[far]).tolist()
-    return (lo, hi, *([None] * (3 - len(below)) + below), *(above + [None] * (3 - len(above))))
+    return Gains(lo, hi, *([None] * (3 - len(below)) + below),
+                 *(above + [None] * (3 - len(above))))
 
 
 def _record(policy, i, edges, cands, act, H, live):
@@ -442,7 +460,8 @@ def _solve_alone(grid: Grid, graph: StateGraph, per_step, live, policy, today_on
                 if k:
                     moves[i] = ((0, k, code),)
                     above = H[k - 1:k + 2].tolist()
-                    gains[(live[0], i, e_best)] = (0, k - 1, None, None, best - float(H[0]), *(
+                    gains[(live[0], i, e_best)] = Gains(0, k - 1, None, None,
+                                                        best - float(H[0]), *(
                         [best - x for x in above] + [None, None])[:3])
                     H[:k] = best
                 else:

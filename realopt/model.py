@@ -230,7 +230,14 @@ class LatticeSpec:
 @dataclass(frozen=True, kw_only=True)
 class Right:
     """A decision right. ``window`` (start, end) in years, inclusive; ``exercise`` american (any
-    step in the window), european (the window's end only) or bermudan (``dates`` inside it)."""
+    step in the window), european (the window's end only) or bermudan (``dates`` inside it).
+
+    Each type of right is a subclass in its own module of :mod:`realopt.rights` (registered in
+    :mod:`realopt.rights.registry`); the state graph, the appraisal, the sensitivities and the
+    tables ask the right through the hooks below, never its class. The flags say how the state
+    graph treats the type: ``commits`` (the one move out of "not yet invested"), ``ends``
+    (absorbing: the project is closed), ``one_shot`` (used at most once, recorded in the
+    state), ``modal`` (the state records its current mode; its moves repeat)."""
 
     name: str
     window: tuple[float, float]
@@ -239,6 +246,11 @@ class Right:
     requires: tuple[str, ...] = ()
     excludes: tuple[str, ...] = ()
     kind: ClassVar[str] = ""
+    KEYS: ClassVar[tuple[str, ...]] = ()      # the file keys of this type (beside the common ones)
+    commits: ClassVar[bool] = False
+    ends: ClassVar[bool] = False
+    one_shot: ClassVar[bool] = False
+    modal: ClassVar[bool] = False
 
     def event_dates(self) -> tuple[float, ...]:
         """Dates the time grid must hit for this right."""
@@ -247,68 +259,13 @@ class Right:
         return tuple(self.window)
 
 
-@dataclass(frozen=True, kw_only=True)
-class Defer(Right):
-    """Wait before committing. ``cost`` paid on exercise; None = the investment outlay plan
-    shifted to the exercise date, valued there at the risk-free rate."""
-
-    cost: Schedule | None = None
-    kind: ClassVar[str] = "defer"
-
-
-@dataclass(frozen=True, kw_only=True)
-class Expand(Right):
-    """Multiply the scale of the operating project by (1 + scale) for ``cost``."""
-
-    scale: float
-    cost: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
-    kind: ClassVar[str] = "expand"
-
-
-@dataclass(frozen=True, kw_only=True)
-class Contract(Right):
-    """Multiply the scale by (1 - scale) and receive ``savings`` (one-off proceeds) on exercise."""
-
-    scale: float
-    savings: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
-    kind: ClassVar[str] = "contract"
-
-
-@dataclass(frozen=True, kw_only=True)
-class Abandon(Right):
-    """Sell out or close for ``salvage`` (not scaled by expansions); ends the project."""
-
-    salvage: Schedule = field(default_factory=lambda: Schedule.constant(0.0))
-    kind: ClassVar[str] = "abandon"
-
-
-@dataclass(frozen=True)
-class Mode:
-    """An operating mode: multiplier on the base cash flows and a fixed yearly flow (+ = inflow)."""
-
-    name: str
-    scale: float = 1.0
-    fixed: float = 0.0
-    cash_flow: str | None = None     # own yearly cash-flow formula (valuation: simulation)
-
-
-@dataclass(frozen=True, kw_only=True)
-class Switch(Right):
-    """Move between operating ``modes`` any number of times; ``costs`` lists the allowed moves
-    as (from mode, to mode, cost schedule)."""
-
-    modes: tuple[Mode, ...]
-    start: str
-    costs: tuple[tuple[str, str, Schedule], ...]
-    kind: ClassVar[str] = "switch"
-
-    def mode(self, name: str) -> Mode:
-        return next(m for m in self.modes if m.name == name)
-
-
-RIGHT_TYPES: dict[str, type[Right]] = {
-    cls.kind: cls for cls in (Defer, Expand, Contract, Abandon, Switch)
-}
+from .rights.defer import Defer  # noqa: E402,F401  (the right types, re-exported)
+from .rights.expand import Expand  # noqa: E402,F401
+from .rights.contract import Contract  # noqa: E402,F401
+from .rights.abandon import Abandon  # noqa: E402,F401
+from .rights.switch import Mode, Switch  # noqa: E402,F401
+from .rights.shutdown import Shutdown  # noqa: E402,F401
+from .rights.registry import RIGHT_TYPES  # noqa: E402,F401
 
 
 @dataclass(frozen=True)

@@ -46,7 +46,7 @@ def today_choices(project) -> dict:
     a defer right) and ``outlay_today`` of ``project`` (see the module docstring)."""
     from .appraisal import _Valuer, appraise
     from .lattice import solve
-    from .rights import build_state_graph
+    from .rights import Action, build_state_graph
 
     a = appraise(project)
     d = a.to_dict()
@@ -59,7 +59,7 @@ def today_choices(project) -> dict:
         commit, keep = a.expanded_npv, None
     else:
         sol = solve(v.grid, graph)
-        edge = next(e for e in graph.edges if e.source == s0 and e.kind == "defer")
+        edge = next(e for e in graph.edges if e.source == s0 and e.action == Action.COMMIT)
         # committing today: the invested state's value after its own decisions today (it may use
         # a right at once), less the commitment's cost today (the investment's present value)
         commit = float(sol.values[edge.target] + edge.sign * edge.amount.at(0.0))

@@ -26,6 +26,7 @@ import numpy as np
 from . import model
 from .errors import ModelError, Problem
 from .keypaths import Index, _float_text, describe, format_path
+from .rights.registry import RIGHT_TYPES
 
 
 # --------------------------------------------------------------------------------------------
@@ -211,15 +212,6 @@ RULES: dict[type, dict[str, Rule]] = {
     model.Right: {
         "exercise": Rule("when the right can be used", "choice", choices=model.EXERCISE),
     },
-    model.Expand: {
-        "scale": Rule("the added fraction of the current scale, above 0 (0.3 = 30% more)",
-                      gt=0.0),
-    },
-    model.Contract: {
-        "scale": Rule("the fraction of the current scale given up, above 0 and below 1 "
-                      "(0.4 = 40% smaller)", gt=0.0, lt=1.0,
-                      fix="to close entirely use an abandon right"),
-    },
     model.Mode: {
         "scale": Rule("the multiplier on the base cash flows in this mode, 0 or more", ge=0.0),
         "fixed": Rule("the fixed yearly flow in this mode (+ inflow, - running cost)"),
@@ -227,10 +219,13 @@ RULES: dict[type, dict[str, Rule]] = {
 }
 
 # money schedules that must not go below 0: (what it is, in the loader's words)
-SCHEDULES: dict[type, dict[str, str]] = {
-    model.Defer: {"cost": "the cost paid on committing"},
-    model.Expand: {"cost": "the cost of the expansion"},
-}
+SCHEDULES: dict[type, dict[str, str]] = {}
+# each right type declares its own (realopt/rights/<type>.py: FIELD_RULES, NONNEG_SCHEDULES)
+for _cls in RIGHT_TYPES.values():
+    if _cls.__dict__.get("FIELD_RULES"):
+        RULES[_cls] = {k: Rule(**v) for k, v in _cls.FIELD_RULES.items()}
+    if _cls.__dict__.get("NONNEG_SCHEDULES"):
+        SCHEDULES[_cls] = dict(_cls.NONNEG_SCHEDULES)
 GROWTH = Rule("a yearly growth rate above -1 (0.02 for 2%)", gt=-1.0)
 
 WINDOW_EXPECTED = "[start, end] in years from now, 0 <= start <= end (both inclusive)"
@@ -374,7 +369,7 @@ def _right(r, path, out):
             elif len(w) == 2 and not w[0] <= d <= w[1]:
                 out.append(Issue(p, f"{d:g}, outside the window [{w[0]:g}, {w[1]:g}]",
                                  "dates inside the window", "widen the window or drop the date"))
-    if isinstance(r, model.Switch):
+    if r.modal:
         for m in r.modes:
             _walk(m, path + ("modes", m.name), out)
 

@@ -15,9 +15,10 @@ from typing import Callable
 
 import numpy as np
 
+from ..rights import Action
 from . import style
 from .sensitivity import SETTLED
-from .tables import Fmt, breakeven_text, mode_shares
+from .tables import Fmt, breakeven_text, commits, is_modal, mode_shares
 
 # matplotlib is imported through .style (Agg) and only inside this module's functions below.
 
@@ -75,7 +76,7 @@ def _action_styles(a) -> dict:
 def _action_text(a, label: str) -> str:
     """A decision map's action label for a reader: exercising a defer right means investing."""
     for r in a.rights:
-        if r.type == "defer" and label == r.name:
+        if commits(r) and label == r.name:
             return f"invest now ({r.name})"
     return label
 
@@ -111,8 +112,9 @@ def _threshold_lines(a, state=None):
                 if not pts:
                     continue
                 xs, ys = _broken(*zip(*pts), breaks)
-                what = r.name if r.type != "switch" else f"{r.name}: {action}"
-                what = f"invest ({r.name})" if r.type == "defer" else what
+                right = a.project.right(r.name)       # its type: modal moves are named
+                what = r.name if not right.modal else f"{r.name}: {action}"
+                what = f"invest ({r.name})" if right.commits else what
                 yield what, word, pts, xs, ys
 
 
@@ -360,7 +362,7 @@ def _draw_chance(fig, a, f: Fmt):
 def _chance_note(r) -> str:
     """What a switch's line counts: switched at least once (results with mode shares), else
     the older measure, the chance of being away from the start mode."""
-    if r.type != "switch":
+    if not is_modal(r):
         return ""
     return " (switched at least once)" if mode_shares(r) else " (in another mode)"
 
@@ -512,7 +514,7 @@ def _state_layout(a):
     sg = a.state_graph
     g = sg.graph
     depth = nx.single_source_shortest_path_length(g, sg.initial)
-    sink = [k for k in g.nodes if g.nodes[k]["label"] == "abandoned"]
+    sink = [k for k in g.nodes if g.nodes[k]["abandoned"]]
     rows: dict[int, list] = {}
     for k in g.nodes:
         if k not in sink:
@@ -521,8 +523,8 @@ def _state_layout(a):
     for u, v, e in g.edges(data=True):
         verb = "pays" if e["sign"] < 0 else "receives"
         name = ", ".join(e["rights"])
-        what = ("invest, " if e["label"] == "commit" else "" if e["label"] in (
-            "expand", "contract", "abandon") else f"{e['label']}: ")
+        what = ("invest, " if e["action"] == Action.COMMIT else f"{e['label']}: "
+                if e["action"] == Action.SWITCH else "")
         moves.setdefault(f"{name}: {what}{verb} {e['amount']}", None)
     return g, rows, sink, list(moves)
 
@@ -559,13 +561,13 @@ def _draw_states(fig, a, f: Fmt):
     for k, (x, y) in pos.items():
         nd = g.nodes[k]
         lines = _wrap(nd["label"], 34).split("\n")
-        if nd["label"] not in ("abandoned", "not yet invested"):
+        if nd["invested"] and not nd["abandoned"]:
             lines.append(f"scale {nd['scale']:g}" + (f", fixed {f.money(nd['fixed'])} a year"
                                                       if nd["fixed"] else ""))
         w = max(len(t) for t in lines) * size * 0.55 / 72 + 0.2
         h = len(lines) * size * 1.3 / 72 + 0.12
-        fc = "#f3f3f3" if nd["label"] == "abandoned" else (
-            "#fdf3d8" if nd["label"] == "not yet invested" else "#e3ecf7")
+        fc = "#f3f3f3" if nd["abandoned"] else (
+            "#fdf3d8" if not nd["invested"] else "#e3ecf7")
         box = FancyBboxPatch((x - w / 2, y - h / 2), w, h,
                              boxstyle="round,pad=0.02,rounding_size=0.06", fc=fc,
                              ec=style.MUTED, lw=0.8, zorder=3)
@@ -696,7 +698,7 @@ def charts(a, s) -> list[Chart]:
 
 
 def _switch_caption(a) -> str:
-    sw = [r for r in a.rights if r.type == "switch"]
+    sw = [r for r in a.rights if is_modal(r)]
     if not sw:
         return ""
     if all(mode_shares(r) for r in sw):

@@ -28,7 +28,7 @@ from ..errors import RealoptError
 from .sensitivity import DEFAULT_MOVES, Moves, analyse
 from .tables import (ALONE_COLUMN, VALUE_COLUMN, Fmt, breakeven_text, chance_by_year,
                      csv_tables, inputs_rows, lattice_rows, mode_share_years, mode_shares,
-                     no_negative_zero)
+                     is_modal, no_negative_zero)
 
 MARKER = ".realopt-report"
 WARN_HEAD = "Read these numbers with the following warnings:"
@@ -379,10 +379,8 @@ def _base_is_not_plain(project) -> bool:
     """Whether some switch right starts in a mode other than the plain project (scale 1, no
     fixed yearly flow): then the base every subset values is not the file's cash flows alone
     and page one says what it is."""
-    from ..model import Switch
-
     for r in project.rights:
-        if isinstance(r, Switch):
+        if r.modal:
             m = next((m for m in r.modes if m.name == r.start), None)
             if m is not None and (m.scale != 1.0 or m.fixed != 0.0):
                 return True
@@ -394,7 +392,7 @@ def _right_facts(r, f: Fmt) -> list[tuple[str, str]]:
              ("Shapley share", f.money_unit(r.shapley_value)),
              ("Value of the right alone", f.money_unit(r.standalone_value))]
     if r.use_years:
-        what = ("Chance of having switched at least once by year" if r.type == "switch"
+        what = ("Chance of having switched at least once by year" if is_modal(r)
                 and mode_shares(r) else "Chance of use by year")
         facts.append((f"{what} {f.year(r.use_years[-1])}",
                       f"{f.pct(r.use_real_world[-1])} real-world, "

@@ -43,8 +43,9 @@ from dataclasses import dataclass, field, replace
 from typing import Any, Callable
 
 from ..errors import RealoptError
-from ..model import (Abandon, Contract, Defer, Driver, Expand, Project, Right, Schedule, Switch,
-                     Underlying)
+from ..model import Driver, Project, Right, Underlying
+from ..rights.contract import CONTRACT_CAP  # noqa: F401  (a moved contraction keeps some)
+from ..rights.raw import schedule_raw as _schedule_raw
 from ..project import DRIVER_FORM_KEYS, Tree, apply_overrides, build_project
 from ..underlying import resolve
 
@@ -53,7 +54,6 @@ COST_RANGE = (0.0, 3.0)           # searched for the investment-cost break-even 
 SCAN_POINTS = 6
 BISECT_STEPS = 8
 MAX_CONVERGENCE_STEPS = 4800      # finest grid of the convergence figure (total steps)
-CONTRACT_CAP = 0.99               # a moved contraction keeps some of the project
 SETTLED = 0.005                   # a grid has settled within 0.5% of the finest grid's value
 
 
@@ -136,15 +136,6 @@ class Sensitivity:
 # --------------------------------------------------------------------------------------------
 # The project as a raw tree (for projects built in Python) and moved copies through the loader
 
-def _schedule_raw(s: Schedule):
-    """A Schedule as the file writes it: a number, {year: amount} or {start, growth}."""
-    if s.start is not None:
-        return {"start": s.start, "growth": s.growth}
-    if len(s.points) == 1 and s.points[0][0] == 0.0:
-        return s.points[0][1]
-    return {y: v for y, v in s.points}
-
-
 def _years_raw(pairs) -> dict:
     return {y: v for y, v in pairs}
 
@@ -191,27 +182,8 @@ def _right_raw(r: Right) -> dict:
         out["requires"] = list(r.requires)
     if r.excludes:
         out["excludes"] = list(r.excludes)
-    if isinstance(r, Defer):
-        if r.cost is not None:
-            out["cost"] = _schedule_raw(r.cost)
-    elif isinstance(r, Expand):
-        out.update(scale=r.scale, cost=_schedule_raw(r.cost))
-    elif isinstance(r, Contract):
-        out.update(scale=r.scale, savings=_schedule_raw(r.savings))
-    elif isinstance(r, Abandon):
-        out["salvage"] = _schedule_raw(r.salvage)
-    elif isinstance(r, Switch):
-        out.update(modes=_modes_raw(r.modes), start=r.start, costs=_costs_raw(r.costs))
+    out.update(r.raw())              # the type's own keys (realopt/rights/<type>.py)
     return out
-
-
-def _modes_raw(modes, k_fixed: float = 1.0, scaled: str | None = None, k_scale: float = 1.0):
-    return {m.name: {"scale": m.scale * k_scale if m.name == scaled else m.scale,
-                     "fixed": m.fixed * k_fixed} for m in modes}
-
-
-def _costs_raw(costs, k: float = 1.0):
-    return {f"{a}->{b}": _schedule_raw(_scaled(c, k)) for a, b, c in costs}
 
 
 def project_tree(p: Project) -> dict:
@@ -301,14 +273,6 @@ class Copier:
         return {"underlying": {**copy.deepcopy(self._frozen), "volatility": sigma}}
 
 
-def _scaled(s: Schedule | None, k: float) -> Schedule | None:
-    if s is None:
-        return None
-    if s.start is not None:
-        return replace(s, start=s.start * k)
-    return replace(s, points=tuple((y, v * k) for y, v in s.points))
-
-
 def _investment(p: Project, k: float) -> dict:
     return {"investment.cost": {y: a * k for y, a in p.investment.outlays}}
 
@@ -329,46 +293,16 @@ def _money_inputs(p: Project):
     elif u.present_value is not None:
         out.append(("Present value of the project", lambda k: {
             "underlying.present_value": u.present_value * k}))
-    for i, r in enumerate(p.rights):
-        n, at = r.name, f"rights.{i}"
-        if isinstance(r, Defer) and r.cost is not None:
-            out.append((f"{n}: cost", lambda k, r=r, at=at: {
-                f"{at}.cost": _schedule_raw(_scaled(r.cost, k))}))
-        elif isinstance(r, Expand):
-            out.append((f"{n}: cost", lambda k, r=r, at=at: {
-                f"{at}.cost": _schedule_raw(_scaled(r.cost, k))}))
-        elif isinstance(r, Contract):
-            out.append((f"{n}: savings", lambda k, r=r, at=at: {
-                f"{at}.savings": _schedule_raw(_scaled(r.savings, k))}))
-        elif isinstance(r, Abandon):
-            out.append((f"{n}: salvage", lambda k, r=r, at=at: {
-                f"{at}.salvage": _schedule_raw(_scaled(r.salvage, k))}))
-        elif isinstance(r, Switch):
-            out.append((f"{n}: switching costs", lambda k, r=r, at=at: {
-                f"{at}.costs": _costs_raw(r.costs, k)}))
-            if any(m.fixed for m in r.modes):
-                out.append((f"{n}: fixed flows of the modes", lambda k, r=r, at=at: {
-                    f"{at}.modes": _modes_raw(r.modes, k_fixed=k)}))
+    for i, r in enumerate(p.rights):         # each type states its own money inputs
+        out += r.money_inputs(f"rights.{i}")
     return out
 
 
 def _scale_inputs(p: Project):
     """(label, base scale, cap, overrides(k)) for each scale input; k multiplies it."""
     out = []
-    for i, r in enumerate(p.rights):
-        at = f"rights.{i}"
-        if isinstance(r, Expand):
-            out.append((f"{r.name}: scale", r.scale, None,
-                        lambda k, r=r, at=at: {f"{at}.scale": r.scale * k}))
-        elif isinstance(r, Contract):
-            out.append((f"{r.name}: scale", r.scale, CONTRACT_CAP,
-                        lambda k, r=r, at=at: {f"{at}.scale": min(CONTRACT_CAP, r.scale * k)}))
-        elif isinstance(r, Switch):
-            for m in r.modes:
-                if m.name != r.start and m.scale:
-                    out.append((f"{r.name}: scale of mode '{m.name}'", m.scale, None,
-                                lambda k, r=r, m=m, at=at: {f"{at}.modes": _modes_raw(
-                                    r.modes, scaled=m.name, k_scale=k)}))
+    for i, r in enumerate(p.rights):         # each type states its own scale inputs
+        out += r.scale_inputs(f"rights.{i}")
     return out
 
 
@@ -376,8 +310,7 @@ def _cost_overrides(p: Project, k: float) -> dict:
     """Every outlay and any defer right's own cost times k (the cost break-even's move)."""
     out = _investment(p, k)
     for i, r in enumerate(p.rights):
-        if isinstance(r, Defer) and r.cost is not None:
-            out[f"rights.{i}.cost"] = _schedule_raw(_scaled(r.cost, k))
+        out.update(r.cost_overrides(f"rights.{i}", k))
     return out
 
 

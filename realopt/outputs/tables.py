@@ -14,8 +14,21 @@ import math
 
 import pandas as pd
 
-from ..model import Abandon, Contract, Defer, Expand, Switch
+from ..rights.registry import RIGHT_TYPES
 from .text import no_negative_zero  # noqa: F401  (re-exported for the writers)
+
+
+def is_modal(r) -> bool:
+    """Whether a right of the results (RightValue) moves between modes (a switch, a shutdown):
+    asked of its registered type."""
+    cls = RIGHT_TYPES.get(r.type)
+    return bool(cls is not None and cls.modal)
+
+
+def commits(r) -> bool:
+    """Whether a right of the results is the commitment (a defer right), by its type."""
+    cls = RIGHT_TYPES.get(r.type)
+    return bool(cls is not None and cls.commits)
 
 
 class Fmt:
@@ -247,23 +260,7 @@ def inputs_rows(project, f: Fmt) -> list[tuple[str, str, str]]:
     for r in p.rights:
         sec = f"Right: {r.name}"
         rows.append((sec, "Type and window", f"{r.kind}; {_window_text(r, f)}"))
-        if isinstance(r, Defer):
-            rows.append((sec, "Cost on exercise", _schedule_text(r.cost, f)))
-        elif isinstance(r, Expand):
-            rows.append((sec, "Added scale", f.pct(r.scale)))
-            rows.append((sec, "Cost", _schedule_text(r.cost, f)))
-        elif isinstance(r, Contract):
-            rows.append((sec, "Scale given up", f.pct(r.scale)))
-            rows.append((sec, "Savings received", _schedule_text(r.savings, f)))
-        elif isinstance(r, Abandon):
-            rows.append((sec, "Salvage", _schedule_text(r.salvage, f)))
-        elif isinstance(r, Switch):
-            for mode in r.modes:
-                rows.append((sec, f"Mode '{mode.name}'", f"scale {f.pct(mode.scale)}, fixed "
-                             f"{f.money(mode.fixed)} a year" + (" (start)" if mode.name == r.start
-                                                                 else "")))
-            for a_, b_, c in r.costs:
-                rows.append((sec, f"Cost {a_} -> {b_}", _schedule_text(c, f)))
+        rows += [(sec, k, v) for k, v in r.input_rows(f, _schedule_text)]   # the type's own
         if r.requires:
             rows.append((sec, "Requires", ", ".join(r.requires)))
         if r.excludes:

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import difflib
 
-from .. import model
 from ..errors import ProjectError
 from .paths import Index
 
@@ -30,7 +29,7 @@ class CrossChecks:
                                      f"did you mean {hint[0]}?" if hint else "check the spelling")
             return
         for i, r in enumerate(rights):
-            if isinstance(r, model.Defer) and r.requires:
+            if r.commits and r.requires:
                 self.bad(path + (Index(i), "requires"), f"requires on the defer right {r.name}",
                          "no requires on a defer right (committing is the first decision)",
                          "delete requires here; put it on the rights that follow the commitment")
@@ -46,7 +45,7 @@ class CrossChecks:
                         self.bad(p, f'"{target}", which is not the name of a right',
                                  f"one of: {', '.join(names)}",
                                  f"did you mean {hint[0]}?" if hint else "check the spelling")
-                    elif key == "requires" and isinstance(rights[index[target]], model.Abandon):
+                    elif key == "requires" and rights[index[target]].ends:
                         self.bad(p, f"{target}, an abandon right", "a defer, expand, contract "
                                  "or switch right (nothing can follow abandonment)",
                                  f"delete {target} from requires")
@@ -94,7 +93,7 @@ class CrossChecks:
         """Warnings that need several sections (each points at the key to look at)."""
         ipv = investment.present_value(market)
         for i, r in enumerate(rights):
-            if isinstance(r, model.Defer) and r.cost is not None:
+            if r.commits and r.cost is not None:
                 c0 = r.cost.at(0.0)
                 if abs(c0 - ipv) > 1e-9 * max(1.0, abs(ipv)):
                     self.warn(("rights", Index(i), "cost"),

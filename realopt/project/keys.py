@@ -2,6 +2,8 @@
 thresholds above which the loader warns."""
 from __future__ import annotations
 
+from ..rights.registry import right_keys
+
 VOLATILITY_WARN = 1.5             # yearly sigma above which the loader warns
 RATE_WARN = 1.0                   # a yearly rate above 100% is a percentage typo: refused
 
@@ -15,11 +17,5 @@ DRIVER_FORM_KEYS = ("years", "drivers", "correlation", "cash_flow", "tax_rate")
 UNDERLYING_KEYS = CASH_FLOW_KEYS + PV_KEYS + DRIVER_FORM_KEYS + ("volatility",)
 LATTICE_KEYS = ("steps_per_year", "up", "down", "step_years")
 COMMON_RIGHT_KEYS = ("name", "type", "window", "exercise", "dates", "requires", "excludes")
-RIGHT_KEYS = {
-    "defer": ("cost",),
-    "expand": ("scale", "cost"),
-    "contract": ("scale", "savings"),
-    "abandon": ("salvage",),
-    "switch": ("modes", "start", "costs"),
-}
+RIGHT_KEYS = right_keys()         # kind -> its keys, from the registry (realopt.rights)
 FORECAST_KEYS = ("file", "year", "value", "sheet")

@@ -22,14 +22,18 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 from functools import cached_property
 
-from .errors import ValuationError
-from .model import Abandon, Contract, Defer, Expand, Right, Schedule, Switch
+from ..errors import ValuationError
+from ..model import Right, Schedule
+from .base import Action
 
 MAX_STATES = 4096
 
 
 @dataclass(frozen=True)
 class State:
+    """A situation of the project; ``invested`` and ``abandoned`` are its flags (outputs read
+    them, never the label)."""
+
     invested: bool
     abandoned: bool
     used: frozenset          # names of one-shot rights used (expand, contract)
@@ -41,8 +45,9 @@ class State:
 
 @dataclass(frozen=True)
 class Edge:
-    """Exercising ``right`` moves ``source`` -> ``target``; ``sign`` * amount(t) is received
-    (sign -1: a cost is paid; +1: salvage or savings are received)."""
+    """Exercising ``right`` (of type ``kind``) moves ``source`` -> ``target``; ``sign`` *
+    amount(t) is received (sign -1: a cost is paid; +1: salvage or savings are received).
+    ``action`` says what the move does; ``label`` is its wording."""
 
     source: int
     target: int
@@ -51,6 +56,7 @@ class Edge:
     amount: Schedule
     sign: int
     label: str               # e.g. "expand", "run -> idle"
+    action: Action = Action.COMMIT
 
 
 @dataclass(frozen=True)
@@ -63,25 +69,26 @@ class StateGraph:
     @cached_property
     def graph(self):
         """The states and edges as a networkx DiGraph (built on first use: networkx is slow to
-        import and only the outputs need it). Node attributes label, scale, fixed; edge
-        attributes rights (names), label, amount (text), sign."""
+        import and only the outputs need it). Node attributes label, scale, fixed, invested,
+        abandoned; edge attributes rights (names), label, action, amount (text), sign."""
         import networkx as nx
 
         g = nx.DiGraph()
         for k, s in enumerate(self.states):
-            g.add_node(k, label=s.label, scale=s.scale, fixed=s.fixed)
+            g.add_node(k, label=s.label, scale=s.scale, fixed=s.fixed, invested=s.invested,
+                       abandoned=s.abandoned)
         for e in self.edges:
             if g.has_edge(e.source, e.target):
                 g.edges[e.source, e.target]["rights"].append(e.right)
             else:
                 g.add_edge(e.source, e.target, rights=[e.right], label=e.label,
-                           amount=e.amount.describe(), sign=e.sign)
+                           action=e.action, amount=e.amount.describe(), sign=e.sign)
         return g
 
     def index(self, *, invested=True, used=frozenset(), modes=None) -> int | None:
         """Index of the state with these attributes (modes default: every switch at its start)."""
         if modes is None:
-            modes = tuple(r.start for r in self.rights if isinstance(r, Switch))
+            modes = tuple(r.start for r in self.rights if r.modal)
         for k, s in enumerate(self.states):
             if (not s.abandoned and s.invested == invested and s.used == frozenset(used)
                     and s.modes == tuple(modes)):
@@ -97,7 +104,7 @@ def prepared_rights(project) -> tuple[Right, ...]:
     ipv = project.investment.present_value(project.market)
     out = []
     for r in project.rights:
-        if isinstance(r, Defer):
+        if r.commits:
             if r.cost is None:
                 r = replace(r, cost=Schedule.constant(ipv))
             elif abs(r.cost.at(0.0) - ipv) > 1e-12 * max(1.0, abs(ipv)):
@@ -108,7 +115,7 @@ def prepared_rights(project) -> tuple[Right, ...]:
 
 def _live_requires(r, by_name) -> tuple[str, ...]:
     """``r.requires`` less the defer rights (a requirement on the defer right always holds)."""
-    return tuple(q for q in r.requires if not isinstance(by_name.get(q), Defer))
+    return tuple(q for q in r.requires if not getattr(by_name.get(q), "commits", False))
 
 
 def usable_subset(rights, names) -> tuple[Right, ...]:
@@ -118,9 +125,9 @@ def usable_subset(rights, names) -> tuple[Right, ...]:
     by_name = {r.name: r for r in rights}
     # a right excluded with the defer right can never be used: the project is committed (the
     # defer right "used") from the start, with the defer right or without it (committed today)
-    defers = {r.name for r in rights if isinstance(r, Defer)}
-    never = {r.name for r in rights if not isinstance(r, Defer) and set(r.excludes) & defers}
-    never |= {x for r in rights if isinstance(r, Defer) for x in r.excludes}
+    defers = {r.name for r in rights if r.commits}
+    never = {r.name for r in rights if not r.commits and set(r.excludes) & defers}
+    never |= {x for r in rights if r.commits for x in r.excludes}
     keep = {r.name: r for r in rights if r.name in names and r.name not in never}
     changed = True
     while changed:
@@ -152,48 +159,42 @@ def requirement_closure(rights, name) -> frozenset:
     return frozenset(out)
 
 
-def held_switches(rights, subset) -> tuple[Switch, ...]:
-    """The switches of ``rights`` left out of ``subset``: held in their start modes."""
+def held_switches(rights, subset) -> tuple[Right, ...]:
+    """The switches (modal rights) of ``rights`` left out of ``subset``: held in their start
+    modes."""
     names = {r.name for r in subset}
-    return tuple(r for r in rights if isinstance(r, Switch) and r.name not in names)
+    return tuple(r for r in rights if r.modal and r.name not in names)
 
 
 def base_description(rights, what: str = "the cash flows as given") -> str:
     """One line on the base project every subset of rights values: ``what``, with each switch in
     its start mode where that mode is not the plain project (scale 1, no fixed flow)."""
-    parts = []
-    for r in rights:
-        if isinstance(r, Switch):
-            m = r.mode(r.start)
-            if m.scale != 1.0 or m.fixed != 0.0:
-                bits = ([f"scale {m.scale:g}"] if m.scale != 1.0 else []) + (
-                    [f"fixed {m.fixed:+g} a year"] if m.fixed != 0.0 else [])
-                parts.append(f"'{r.name}' in its start mode '{r.start}' ({', '.join(bits)})")
+    parts = [t for t in (r.base_part() for r in rights) if t]
     text = f"Base project: {what}"
     return text + (", with " + " and ".join(parts) if parts else "")
 
 
 def base_scale_fixed(rights) -> tuple[float, float]:
     """(scale, fixed yearly flow) of the base project: every switch in its start mode."""
-    return _scale_fixed(rights, frozenset(), tuple(r.start for r in rights
-                                                   if isinstance(r, Switch)))
+    return _scale_fixed(rights, frozenset(), tuple(r.start for r in rights if r.modal))
 
 
 def _scale_fixed(rights, used, modes, held=()):
     scale, fixed = 1.0, 0.0
     for sw in held:
-        mode = sw.mode(sw.start)
-        scale *= mode.scale
-        fixed += mode.fixed
+        k, add = sw.scale_fixed(used, sw.start)
+        scale *= k
+        fixed += add
     for r in rights:
-        if isinstance(r, Expand) and r.name in used:
-            scale *= 1.0 + r.scale
-        elif isinstance(r, Contract) and r.name in used:
-            scale *= 1.0 - r.scale
-    for sw, m in zip([r for r in rights if isinstance(r, Switch)], modes):
-        mode = sw.mode(m)
-        scale *= mode.scale
-        fixed += mode.fixed
+        if not r.modal:
+            k, add = r.scale_fixed(used, None)
+            if k != 1.0:
+                scale *= k
+            fixed += add
+    for sw, m in zip([r for r in rights if r.modal], modes):
+        k, add = sw.scale_fixed(used, m)
+        scale *= k
+        fixed += add
     return scale, fixed
 
 
@@ -203,17 +204,17 @@ def _label(rights, invested, abandoned, used, modes):
     if not invested:
         return "not yet invested"
     parts = [r.name for r in rights if r.name in used]
-    switches = [r for r in rights if isinstance(r, Switch)]
+    switches = [r for r in rights if r.modal]
     parts += [f"{m} mode" for sw, m in zip(switches, modes) if m != sw.start]
     return "operating" if not parts else "operating, " + ", ".join(parts)
 
 
-def build_state_graph(rights: tuple[Right, ...], held: tuple[Switch, ...] = ()) -> StateGraph:
+def build_state_graph(rights: tuple[Right, ...], held: tuple[Right, ...] = ()) -> StateGraph:
     """Compile ``rights`` into the state graph by search from the initial state; validates it.
     ``held``: switches outside ``rights`` that stay in their start modes (see held_switches)."""
-    switches = [r for r in rights if isinstance(r, Switch)]
+    switches = [r for r in rights if r.modal]
     sw_index = {r.name: k for k, r in enumerate(switches)}
-    defer = next((r for r in rights if isinstance(r, Defer)), None)
+    defer = next((r for r in rights if r.commits), None)
     by_name = {r.name: r for r in rights}
     excluded_by = {r.name: set(r.excludes) for r in rights}
     for r in rights:                                   # excludes is symmetric
@@ -225,13 +226,7 @@ def build_state_graph(rights: tuple[Right, ...], held: tuple[Switch, ...] = ()) 
         r = by_name.get(name)
         if r is None:
             return False
-        if isinstance(r, Defer):
-            return invested
-        if isinstance(r, Switch):
-            return modes[sw_index[name]] != r.start
-        if isinstance(r, Abandon):
-            return abandoned
-        return name in used
+        return r.is_used(invested, abandoned, used, modes, sw_index.get(name))
 
     start_modes = tuple(r.start for r in switches)
     initial = (defer is None, False, frozenset(), start_modes)
@@ -248,29 +243,22 @@ def build_state_graph(rights: tuple[Right, ...], held: tuple[Switch, ...] = ()) 
             continue
         moves = []
         if not invested:
-            moves.append((defer, (True, False, used, modes), defer.cost, -1, "commit"))
+            moves.append((defer, (True, False, used, modes), defer.cost, -1, Action.COMMIT,
+                          "commit"))
         else:
             for r in rights:
-                if isinstance(r, Defer):
+                if r.commits:
                     continue
                 if not all(used_in(q, key) for q in _live_requires(r, by_name)):
                     continue
                 if any(used_in(x, key) for x in excluded_by.get(r.name, ())):
                     continue
-                if isinstance(r, (Expand, Contract)):
-                    if r.name in used:
-                        continue
-                    amount, sign = (r.cost, -1) if isinstance(r, Expand) else (r.savings, +1)
-                    moves.append((r, (True, False, used | {r.name}, modes), amount, sign, r.kind))
-                elif isinstance(r, Abandon):
-                    moves.append((r, ABANDONED, r.salvage, +1, "abandon"))
-                elif isinstance(r, Switch):
-                    s = sw_index[r.name]
-                    for a, b, cost in r.costs:
-                        if modes[s] == a:
-                            new = modes[:s] + (b,) + modes[s + 1:]
-                            moves.append((r, (True, False, used, new), cost, -1, f"{a} -> {b}"))
-        for r, target, amount, sign, label in moves:
+                for new_used, new_modes, amount, sign, action, label in r.moves(
+                        used, modes, sw_index.get(r.name)):
+                    target = ABANDONED if new_modes is None else (True, False, frozenset(
+                        new_used), new_modes)
+                    moves.append((r, target, amount, sign, action, label))
+        for r, target, amount, sign, action, label in moves:
             if target not in index:
                 if len(keys) >= MAX_STATES:
                     raise ValuationError(
@@ -278,7 +266,8 @@ def build_state_graph(rights: tuple[Right, ...], held: tuple[Switch, ...] = ()) 
                         "fewer rights together (split the project) or merge similar rights.")
                 index[target] = len(keys)
                 keys.append(target)
-            raw_edges.append(Edge(index[key], index[target], r.name, r.kind, amount, sign, label))
+            raw_edges.append(Edge(index[key], index[target], r.name, r.kind, amount, sign, label,
+                                  action))
 
     states = []
     for key in keys:
@@ -359,8 +348,8 @@ def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: fl
                        + (f"'{r.name}' can never be used." if never else
                           f"'{r.name}' is not used after year {last:g}.")
                        + " End the window by the last cash-flow year, or extend the cash flows.")
-        if r.kind in ("abandon", "contract") and _open_at(r, last):
-            what = "salvage" if r.kind == "abandon" else "savings"
+        if r.proceeds and _open_at(r, last):
+            what = r.proceeds
             if terminal_value is not None and terminal_value == 0:
                 out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
                            f"nothing is left of the project (no terminal value): its {what} "
@@ -368,8 +357,7 @@ def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: fl
                            f"year {last:g} unless the {what} are truly available then.")
             else:
                 tv = " (if any)" if terminal_value is None else f" ({terminal_value:,.4g})"
-                share = "replaces the terminal value" if r.kind == "abandon" else (
-                    f"replaces its share ({r.scale:.0%}) of the terminal value")
+                share = r.terminal_share()
                 out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
                            f"only the terminal value{tv} is left: decided before the terminal "
                            f"value is paid, its {what} there {share}. Check that the terminal "
