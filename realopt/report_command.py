@@ -72,15 +72,9 @@ def register(sub) -> None:
 
 def run_report(args) -> int:
     from .cli import _out, appraise_from_args, load_from_args
-    from .errors import RealoptError
     from .outputs.report import write_report
     from .outputs.sensitivity import DEFAULT_MOVES, report_solves
 
-    if load_from_args(args, args.file).valuation == "simulation":
-        raise RealoptError(
-            f"{args.file}: realopt report does not draw simulation results yet (valuation: "
-            "simulation); use `realopt appraise FILE` for the table and rules, or `realopt "
-            "appraise FILE --json` for every figure with its standard error. Nothing was written.")
     extra = []
     if getattr(args, "sweep", None):
         from .outputs.sweep_figures import sweep_chart
