@@ -25,9 +25,10 @@ from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
              "results yet.")
-FIGURES = ("value_bridge", "decision_maps", "chance_of_use", "fan")
+FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan")
 TITLES = {"value_bridge": "Value bridge (error bars: one standard error)",
           "decision_maps": "Decision maps in the plane of two drivers",
+          "thresholds": "Exercise thresholds in the driver's units",
           "chance_of_use": "Chance of use",
           "fan": "Fan of the drivers (real-world paths)"}
 
@@ -120,39 +121,65 @@ def textwrap_label(s: str, width: int = 16) -> str:
 
 
 def fig_maps(a):
-    """One row per state, one panel per date; colours index the state's actions."""
+    """One row per state, one panel per date; colours index the state's actions. A date where
+    the grid has no spread (today: the drivers are known) is left out of the figure."""
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
 
-    maps = list(a.driver_maps)
+    maps = [m for m in a.driver_maps
+            if np.ptp(np.asarray(m.x_values)) > 0 and np.ptp(np.asarray(m.y_values)) > 0]
     states = list(dict.fromkeys(m.state for m in maps))
     ncol = max(sum(m.state == s for m in maps) for s in states)
-    fig = _fig(2.3 * len(states) + 0.6)
+    fig = _fig(2.5 * len(states) + 0.5)
     colours = ["#d9d9d9", "#4a6fa5", "#e3a33b", "#5a9e6f", "#c0504d", "#8064a2"]
+    grid = fig.add_gridspec(len(states), ncol + 1, width_ratios=[1] * ncol + [1.1])
     for i, s in enumerate(states):
         row = [m for m in maps if m.state == s]
         for j, m in enumerate(row):
-            ax = fig.add_subplot(len(states), ncol, i * ncol + j + 1)
+            ax = fig.add_subplot(grid[i, j])
             n = len(m.actions)
-            cmap = ListedColormap(colours[:n])
-            xv, yv = np.asarray(m.x_values), np.asarray(m.y_values)
-            if np.ptp(xv) == 0 or np.ptp(yv) == 0:      # today: the drivers are known
-                ax.scatter([xv[0]], [yv[0]], c=[colours[int(m.codes.flat[0])]], s=60,
-                           edgecolors="black")
-                ax.set_title(f"{s}\nyear {m.year:.4g} (today's prices)", fontsize=7)
-            else:
-                ax.pcolormesh(xv, yv, m.codes, cmap=cmap, vmin=-0.5, vmax=n - 0.5,
-                              shading="nearest")
-                ax.set_title(f"{s}\nyear {m.year:.4g}", fontsize=7)
+            ax.pcolormesh(np.asarray(m.x_values), np.asarray(m.y_values), m.codes,
+                          cmap=ListedColormap(colours[:n]), vmin=-0.5, vmax=n - 0.5,
+                          shading="nearest")
+            ax.set_title(f"year {m.year:.4g}", fontsize=7)
             ax.set_xlabel(m.x_driver, fontsize=7)
-            if j == 0:
-                ax.set_ylabel(m.y_driver, fontsize=7)
+            ax.set_ylabel(m.y_driver if j == 0 else "", fontsize=7)
             ax.tick_params(labelsize=6)
-        handles = [Patch(color=colours[k], label=act) for k, act in enumerate(row[0].actions)]
-        others = ", ".join(f"{k} at its median" for k in row[0].others)
-        fig.axes[i * ncol].legend(handles=handles, fontsize=6, loc="upper left",
-                                  title=others or None, title_fontsize=6, framealpha=0.85)
-    fig.suptitle("Best action by driver values (fitted policy)", fontsize=9)
+        key = fig.add_subplot(grid[i, ncol])
+        key.axis("off")
+        handles = [Patch(color=colours[k], label=textwrap_label(act, 30))
+                   for k, act in enumerate(row[0].actions)]
+        others = "\n".join(f"{k} at its median" for k in row[0].others)
+        key.legend(handles=handles, fontsize=6, loc="center left",
+                   title=textwrap_label(f"from: {s}", 30) + (f"\n{others}" if others else ""),
+                   title_fontsize=6)
+    fig.suptitle("Best action by driver values (fitted policy), drivers in the file's units",
+                 fontsize=9)
+    return fig
+
+
+def fig_thresholds(a):
+    """Exercise thresholds in the one stochastic driver's units, one panel per right."""
+    rights = [r for r in a.rights if r.thresholds]
+    fig = _fig(2.4 * len(rights) + 0.4)
+    for i, r in enumerate(rights):
+        ax = fig.add_subplot(len(rights), 1, i + 1)
+        keys = list(dict.fromkeys((t.state, t.action) for t in r.thresholds))
+        for k, (state, action) in enumerate(keys):
+            ts = [t for t in r.thresholds if (t.state, t.action) == (state, action)
+                  and not t.never]
+            y = [t.year for t in ts]
+            lo = [np.nan if t.lower is None else t.lower for t in ts]
+            hi = [np.nan if t.upper is None else t.upper for t in ts]
+            c = ["#4a6fa5", "#c0504d", "#5a9e6f", "#e3a33b"][k % 4]
+            ax.plot(y, lo, color=c, marker=".", ms=3, label=f"{action} from {state}: above")
+            ax.plot(y, hi, color=c, ls="--", marker=".", ms=3,
+                    label=f"{action} from {state}: below")
+        ax.set_ylabel(r.thresholds[0].driver, fontsize=7)
+        ax.set_title(r.name, fontsize=8)
+        ax.legend(fontsize=6, loc="best")
+        ax.tick_params(labelsize=6)
+    fig.axes[-1].set_xlabel("years from today", fontsize=7)
     return fig
 
 
@@ -199,10 +226,14 @@ def fig_fan(a):
 def draw(a, f: Fmt, dpi: int) -> dict:
     """slug -> PNG bytes, each figure drawn once."""
     makers = {"value_bridge": lambda: fig_bridge(a, f), "decision_maps": lambda: fig_maps(a),
+              "thresholds": lambda: fig_thresholds(a),
               "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a)}
     out = {}
     for slug in FIGURES:
-        if slug == "decision_maps" and not a.driver_maps:
+        if slug == "decision_maps" and not any(
+                np.ptp(np.asarray(m.x_values)) > 0 for m in a.driver_maps):
+            continue
+        if slug == "thresholds" and not any(r.thresholds for r in a.rights):
             continue
         if slug == "chance_of_use" and not a.rights:
             continue
