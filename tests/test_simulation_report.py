@@ -151,7 +151,7 @@ def test_caution_first_and_last_in_every_format(river):
     for name in ("report.html", "report.md"):
         t = (out / name).read_text(encoding="utf-8")
         first, last = t.find("Caution"), t.rfind("Caution")
-        assert first != last and first < 400 and len(t) - last < len(CAUTION_SIMULATION) + 40
+        assert first != last and first < 600 and len(t) - last < len(CAUTION_SIMULATION) + 80
     pdf = (out / "report.pdf").read_bytes()
     assert pdf.startswith(b"%PDF")
     manifest = json.loads((out / MARKER).read_text())
