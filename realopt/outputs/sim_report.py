@@ -172,9 +172,13 @@ def fig_thresholds(a):
             lo = [np.nan if t.lower is None else t.lower for t in ts]
             hi = [np.nan if t.upper is None else t.upper for t in ts]
             c = ["#4a6fa5", "#c0504d", "#5a9e6f", "#e3a33b"][k % 4]
-            ax.plot(y, lo, color=c, marker=".", ms=3, label=f"{action} from {state}: above")
-            ax.plot(y, hi, color=c, ls="--", marker=".", ms=3,
-                    label=f"{action} from {state}: below")
+            d = r.thresholds[0].driver
+            if not np.all(np.isnan(lo)):
+                ax.plot(y, lo, color=c, marker="o", ms=3,
+                        label=f"{action} from {state} when {d} is above the line")
+            if not np.all(np.isnan(hi)):
+                ax.plot(y, hi, color=c, ls="--", marker="o", ms=3,
+                        label=f"{action} from {state} when {d} is below the line")
         ax.set_ylabel(r.thresholds[0].driver, fontsize=7)
         ax.set_title(r.name, fontsize=8)
         ax.legend(fontsize=6, loc="best")
