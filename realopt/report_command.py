@@ -47,7 +47,9 @@ def register(sub) -> None:
             openpyxl is installed) and figures/*.png at print resolution: the value bridge,
             decision maps, exercise thresholds, chance of use, value fan, sensitivity tornado
             with break-evens, convergence over the lattice grid and the diagram of project
-            states. The folder is written whole or not at all: a failure leaves any previous
+            states. A simulation result (valuation: simulation) gets the value bridge with
+            standard errors, decision maps in two drivers' plane (or thresholds in the one
+            driver's units), chance of use, the drivers' fan and the real-world DCF. The folder is written whole or not at all: a failure leaves any previous
             report in DIR as it was."""),
         epilog=textwrap.dedent("""\
             examples:
