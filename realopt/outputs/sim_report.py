@@ -368,18 +368,23 @@ def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
     lines += [a.project.name, f"Money in {f.unit_label}, valued today.", ""]
     lines += [f"{i[:58]:<60}{f.money(v):>14}  {('+- ' + f.money(e)) if e is not None else ''}"
               for i, v, e in value_rows(a)]
+    lines += ["", "Standalone value of each right (alone on the static project):"]
+    lines += [f"  {n[:56]:<58}{f.money(sv):>14}  +- {f.money(se)}"
+              for n, _, sv, se, _, _ in right_rows(a)]
     lines += [""] + textwrap.wrap(f"Decision today: {a.decision_today}", 95) + [""]
     for r in a.rights:
         lines += textwrap.wrap(f"- {r.rule}", 95)
     lines += [""] + textwrap.wrap(dcf_sentence(a, f), 95) + [""]
     lines += textwrap.wrap(NOT_DRAWN, 95) + textwrap.wrap(sim_sentence(a), 95)
     with PdfPages(path) as pdf:
-        fig = Figure(figsize=A4)
-        for k, line in enumerate(lines[:70]):
-            fig.text(0.06, 0.95 - k * 0.0125, line, fontsize=7, family="monospace",
-                     va="top")
-        pdf.savefig(fig)
-        pages.append("Values and rules")
+        per_page = 72
+        for start in range(0, len(lines), per_page):          # text runs on, never cut
+            fig = Figure(figsize=A4)
+            for k, line in enumerate(lines[start:start + per_page]):
+                fig.text(0.06, 0.95 - k * 0.0125, line, fontsize=7, family="monospace",
+                         va="top")
+            pdf.savefig(fig)
+            pages.append("Values and rules" if start == 0 else "Values and rules (cont.)")
         for slug, (_, fg) in pngs.items():
             pdf.savefig(fg)
             pages.append(TITLES[slug])
