@@ -47,7 +47,9 @@ def register(sub) -> None:
             openpyxl is installed) and figures/*.png at print resolution: the value bridge,
             decision maps, exercise thresholds, chance of use, value fan, sensitivity tornado
             with break-evens, convergence over the lattice grid and the diagram of project
-            states. The folder is written whole or not at all: a failure leaves any previous
+            states. A simulation result (valuation: simulation) gets the value bridge with
+            standard errors, decision maps in two drivers' plane (or thresholds in the one
+            driver's units), chance of use, the drivers' fan and the real-world DCF. The folder is written whole or not at all: a failure leaves any previous
             report in DIR as it was."""),
         epilog=textwrap.dedent("""\
             examples:
@@ -72,15 +74,9 @@ def register(sub) -> None:
 
 def run_report(args) -> int:
     from .cli import _out, appraise_from_args, load_from_args
-    from .errors import RealoptError
     from .outputs.report import write_report
     from .outputs.sensitivity import DEFAULT_MOVES, report_solves
 
-    if load_from_args(args, args.file).valuation == "simulation":
-        raise RealoptError(
-            f"{args.file}: realopt report does not draw simulation results yet (valuation: "
-            "simulation); use `realopt appraise FILE` for the table and rules, or `realopt "
-            "appraise FILE --json` for every figure with its standard error. Nothing was written.")
     extra = []
     if getattr(args, "sweep", None):
         from .outputs.sweep_figures import sweep_chart

@@ -183,6 +183,10 @@ def _swap(tmp: Path, final: Path) -> None:
 def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> None:
     from . import figures
 
+    if getattr(a, "method", "") == "simulation":           # drawn from the one result
+        from .sim_report import write_all
+
+        return write_all(a, tmp, dpi, xlsx, source, MARKER)
     f = Fmt(a.project)
     with _Drawer(a, moves, dpi) as drawer:
         b = Built(appraisal=a, drawer=drawer, fmt=f, charts=list(drawer.base),

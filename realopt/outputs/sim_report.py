@@ -1,0 +1,430 @@
+"""The report of a simulation appraisal (``valuation: simulation``), written into a folder.
+
+Called by :func:`realopt.outputs.report.write_report` (which owns the atomic temp-folder +
+rename) with a :class:`realopt.simulation.result.SimulationAppraisal`. Nothing is re-simulated:
+every figure and table is drawn from the one result object. Money is in the project's currency
+and unit, valued today (risk-neutral on the drivers); years from today; driver values in the
+units the project file gives them (the file does not name the units). Every number shown is a
+field of the result, formatted by :class:`realopt.outputs.tables.Fmt`; numbered HTML cells carry
+their exact value in ``data-value``.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from ..simulation.result import CAUTION_SIMULATION
+from .tables import Fmt
+
+NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
+             "results yet.")
+FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan")
+TITLES = {"value_bridge": "Value bridge (error bars: one standard error)",
+          "decision_maps": "Decision maps in the plane of two drivers",
+          "thresholds": "Exercise thresholds in the driver's units",
+          "chance_of_use": "Chance of use",
+          "fan": "Fan of the drivers (real-world paths)"}
+
+
+# ------------------------------------------------------------------------ tables
+def value_rows(a):
+    """(item, value, standard error or None) of the value table, top to bottom."""
+    se = a.standard_error
+    rows = [("Present value of the operating project", a.present_value, se["present_value"]),
+            ("Investment (present value)", -a.investment_pv, None),
+            ("Static NPV", a.static_npv, se["present_value"])]
+    rows += [(f"{r.name} ({r.type}), Shapley share", r.shapley_value, r.shapley_standard_error)
+             for r in a.rights]
+    rows += [("Interaction between rights", a.interaction, None),
+             ("Flexibility value", a.flexibility_value, se["flexibility_value"]),
+             ("Expanded NPV", a.expanded_npv, se["expanded_npv"])]
+    return rows
+
+
+def right_rows(a):
+    """(right, type, standalone, its se, Shapley share, its se)."""
+    return [(r.name, r.type, r.standalone_value, r.standalone_standard_error, r.shapley_value,
+             r.shapley_standard_error) for r in a.rights]
+
+
+def csv_tables(a) -> dict:
+    t = {"value_bridge": pd.DataFrame(value_rows(a),
+                                      columns=["item", "value", "standard_error"]),
+         "rights": pd.DataFrame(right_rows(a), columns=[
+             "right", "type", "standalone_value", "standalone_standard_error",
+             "shapley_value", "shapley_standard_error"])}
+    rows = []
+    for r in a.rights:
+        for k, y in enumerate(r.use_years):
+            row = {"right": r.name, "year": y, "chance_real_world": r.use_real_world[k],
+                   "chance_risk_neutral": r.use_risk_neutral[k]}
+            for m, (rn, rw) in (r.mode_shares or {}).items():
+                row[f"share_{m}_risk_neutral"] = rn[k]
+                row[f"share_{m}_real_world"] = rw[k]
+            rows.append(row)
+    t["chance_of_use"] = pd.DataFrame(rows)
+    fan = {"year": a.fan_years}
+    for d, qs in a.fan.items():
+        for q, v in qs.items():
+            fan[f"{d}_p{q}"] = v
+    t["fan"] = pd.DataFrame(fan)
+    t["real_world_dcf"] = pd.DataFrame([a.real_world_dcf])
+    t["warnings"] = pd.DataFrame({"warning": list(a.warnings)})
+    return t
+
+
+# ------------------------------------------------------------------------ figures
+def _fig(h, w=7.0):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(w, h), layout="constrained")
+
+
+def fig_bridge(a, f: Fmt):
+    rows = [("Static NPV", a.static_npv, a.standard_error["present_value"])]
+    rows += [(r.name, r.shapley_value, r.shapley_standard_error) for r in a.rights]
+    rows += [("Interaction", a.interaction, 0.0),
+             ("Expanded NPV", a.expanded_npv, a.standard_error["expanded_npv"])]
+    fig = _fig(3.6)
+    ax = fig.add_subplot()
+    base, x = 0.0, np.arange(len(rows))
+    for k, (name, v, e) in enumerate(rows):
+        total = k in (0, len(rows) - 1)
+        bottom = 0.0 if total else base
+        colour = "#4a6fa5" if total else ("#5a9e6f" if v >= 0 else "#c0504d")
+        ax.bar(k, v, bottom=bottom, color=colour, width=0.6)
+        top = bottom + v
+        if e:
+            ax.errorbar(k, top, yerr=e, color="black", capsize=4, lw=1)
+        ax.annotate(f.money(v), (k, max(top, bottom)), ha="center", va="bottom", fontsize=7,
+                    xytext=(0, 3), textcoords="offset points")
+        base = top if not total else v
+    ax.axhline(0, color="grey", lw=0.8)
+    ax.set_xticks(x, [textwrap_label(n) for n, _, _ in rows], fontsize=7)
+    ax.set_ylabel(f"{f.unit_label} (today)")
+    ax.set_title("Static NPV, each right's Shapley share, expanded NPV (+- one standard error)",
+                 fontsize=9)
+    return fig
+
+
+def textwrap_label(s: str, width: int = 16) -> str:
+    import textwrap
+
+    return "\n".join(textwrap.wrap(s, width)) or s
+
+
+def fig_maps(a):
+    """One row per state, one panel per date; colours index the state's actions. A date where
+    the grid has no spread (today: the drivers are known) is left out of the figure."""
+    from matplotlib.colors import ListedColormap
+    from matplotlib.patches import Patch
+
+    maps = [m for m in a.driver_maps
+            if np.ptp(np.asarray(m.x_values)) > 0 and np.ptp(np.asarray(m.y_values)) > 0]
+    states = list(dict.fromkeys(m.state for m in maps))
+    ncol = max(sum(m.state == s for m in maps) for s in states)
+    fig = _fig(2.5 * len(states) + 0.5)
+    colours = ["#d9d9d9", "#4a6fa5", "#e3a33b", "#5a9e6f", "#c0504d", "#8064a2"]
+    grid = fig.add_gridspec(len(states), ncol + 1, width_ratios=[1] * ncol + [1.1])
+    for i, s in enumerate(states):
+        row = [m for m in maps if m.state == s]
+        for j, m in enumerate(row):
+            ax = fig.add_subplot(grid[i, j])
+            n = len(m.actions)
+            ax.pcolormesh(np.asarray(m.x_values), np.asarray(m.y_values), m.codes,
+                          cmap=ListedColormap(colours[:n]), vmin=-0.5, vmax=n - 0.5,
+                          shading="nearest")
+            ax.set_title(f"year {m.year:.4g}", fontsize=7)
+            ax.set_xlabel(m.x_driver, fontsize=7)
+            ax.set_ylabel(m.y_driver if j == 0 else "", fontsize=7)
+            ax.tick_params(labelsize=6)
+        key = fig.add_subplot(grid[i, ncol])
+        key.axis("off")
+        handles = [Patch(color=colours[k], label=textwrap_label(act, 30))
+                   for k, act in enumerate(row[0].actions)]
+        others = "\n".join(f"{k} at its median" for k in row[0].others)
+        key.legend(handles=handles, fontsize=6, loc="center left",
+                   title=textwrap_label(f"from: {s}", 30) + (f"\n{others}" if others else ""),
+                   title_fontsize=6)
+    fig.suptitle("Best action by driver values (fitted policy), drivers in the file's units",
+                 fontsize=9)
+    return fig
+
+
+def fig_thresholds(a):
+    """Exercise thresholds in the one stochastic driver's units, one panel per right."""
+    rights = [r for r in a.rights if r.thresholds]
+    fig = _fig(2.4 * len(rights) + 0.4)
+    for i, r in enumerate(rights):
+        ax = fig.add_subplot(len(rights), 1, i + 1)
+        keys = list(dict.fromkeys((t.state, t.action) for t in r.thresholds))
+        for k, (state, action) in enumerate(keys):
+            ts = [t for t in r.thresholds if (t.state, t.action) == (state, action)
+                  and not t.never]
+            y = [t.year for t in ts]
+            lo = [np.nan if t.lower is None else t.lower for t in ts]
+            hi = [np.nan if t.upper is None else t.upper for t in ts]
+            c = ["#4a6fa5", "#c0504d", "#5a9e6f", "#e3a33b"][k % 4]
+            d = r.thresholds[0].driver
+            if not np.all(np.isnan(lo)):
+                ax.plot(y, lo, color=c, marker="o", ms=3,
+                        label=f"{action} from {state} when {d} is above the line")
+            if not np.all(np.isnan(hi)):
+                ax.plot(y, hi, color=c, ls="--", marker="o", ms=3,
+                        label=f"{action} from {state} when {d} is below the line")
+        ax.set_ylabel(r.thresholds[0].driver, fontsize=7)
+        ax.set_title(r.name, fontsize=8)
+        ax.legend(fontsize=6, loc="best")
+        ax.tick_params(labelsize=6)
+    fig.axes[-1].set_xlabel("years from today", fontsize=7)
+    return fig
+
+
+def fig_chance(a):
+    rights = list(a.rights)
+    fig = _fig(2.4 * len(rights) + 0.4)
+    for i, r in enumerate(rights):
+        ax = fig.add_subplot(len(rights), 1, i + 1)
+        y = np.asarray(r.use_years)
+        label = ("switched at least once" if r.type == "switch" else "exercised by this date")
+        ax.plot(y, r.use_real_world, color="#4a6fa5", label=f"{label}, real-world")
+        ax.plot(y, r.use_risk_neutral, color="#4a6fa5", ls="--",
+                label=f"{label}, risk-neutral")
+        for k, (m, (rn, rw)) in enumerate((r.mode_shares or {}).items()):
+            c = ["#5a9e6f", "#e3a33b", "#c0504d", "#8064a2"][k % 4]
+            ax.plot(y, rw, color=c, label=f"share in '{m}', real-world")
+            ax.plot(y, rn, color=c, ls="--", label=f"share in '{m}', risk-neutral")
+        ax.set_ylim(-0.02, 1.02)
+        ax.set_ylabel("chance", fontsize=7)
+        ax.set_title(r.name, fontsize=8)
+        ax.legend(fontsize=6, loc="best")
+        ax.tick_params(labelsize=6)
+    fig.axes[-1].set_xlabel("years from today", fontsize=7)
+    return fig
+
+
+def fig_fan(a):
+    names = list(a.fan)
+    fig = _fig(2.2 * len(names) + 0.3)
+    y = np.asarray(a.fan_years)
+    for i, d in enumerate(names):
+        q = a.fan[d]
+        ax = fig.add_subplot(len(names), 1, i + 1)
+        ax.fill_between(y, q[5], q[95], color="#4a6fa5", alpha=0.2, label="5-95th percentile")
+        ax.fill_between(y, q[25], q[75], color="#4a6fa5", alpha=0.4, label="25-75th percentile")
+        ax.plot(y, q[50], color="#4a6fa5", label="median")
+        ax.set_ylabel(d, fontsize=7)
+        ax.tick_params(labelsize=6)
+        ax.legend(fontsize=6, loc="upper left")
+    fig.axes[-1].set_xlabel("years from today", fontsize=7)
+    return fig
+
+
+def draw(a, f: Fmt, dpi: int) -> dict:
+    """slug -> PNG bytes, each figure drawn once."""
+    makers = {"value_bridge": lambda: fig_bridge(a, f), "decision_maps": lambda: fig_maps(a),
+              "thresholds": lambda: fig_thresholds(a),
+              "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a)}
+    out = {}
+    for slug in FIGURES:
+        if slug == "decision_maps" and not any(
+                np.ptp(np.asarray(m.x_values)) > 0 for m in a.driver_maps):
+            continue
+        if slug == "thresholds" and not any(r.thresholds for r in a.rights):
+            continue
+        if slug == "chance_of_use" and not a.rights:
+            continue
+        if slug == "fan" and not a.fan:
+            continue
+        fig = makers[slug]()
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=dpi)
+        out[slug] = (buf.getvalue(), fig)
+    return out
+
+
+# ------------------------------------------------------------------------ text
+def dcf_sentence(a, f: Fmt) -> str:
+    rw = a.real_world_dcf
+    return (f"The DCF of the real-world expected base flows at the discount rate is "
+            f"{f.money(rw['value'])} (standard error {f.money(rw['standard_error'])}), beside "
+            f"the risk-neutral present value of {f.money(a.present_value)}: the difference is "
+            "the price of the drivers' risk, charged one way by the single discount rate and "
+            "another by the risk-neutral description (forward curves, risk premia); the values "
+            "of the rights rest on the risk-neutral one.")
+
+
+def sim_sentence(a) -> str:
+    s = a.simulation
+    return (f"Least-squares Monte Carlo: {s.paths:,} paths fit the policy and as many "
+            f"independent paths value it (seed {s.seed}); {s.dates} dates, "
+            f"{s.decision_dates} with a decision; {s.regression_terms} regression terms; "
+            f"{s.states} states.")
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def _td(x, f: Fmt) -> str:
+    if x is None:
+        return "<td></td>"
+    return f'<td class="num" data-value="{float(x)!r}">{_e(f.money(x))}</td>'
+
+
+def _img(png: bytes, alt: str) -> str:
+    return (f'<figure><img alt="{_e(alt)}" style="max-width:100%" '
+            f'src="data:image/png;base64,{base64.b64encode(png).decode()}"></figure>')
+
+
+def render_html(a, f: Fmt, pngs) -> str:
+    p = a.project
+    h = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>{_e(p.name)}</title>",
+         "<style>body{font-family:sans-serif;max-width:60em;margin:auto}"
+         "td.num{text-align:right}table{border-collapse:collapse}td,th{padding:2px 8px;"
+         "border-bottom:1px solid #ccc}.caution{border:1px solid #999;padding:6px}"
+         "@page{size:A4;margin:15mm}</style></head><body>",
+         f"<h1>{_e(p.name)}</h1>", f'<p class="caution">{_e(CAUTION_SIMULATION)}</p>']
+    for w in a.headline_warnings:
+        h.append(f"<p><strong>Warning:</strong> {_e(w)}</p>")
+    h.append(f"<p>{_e(a.base)}. Money in {_e(f.unit_label)}, valued today.</p>")
+    h.append("<h2>Values</h2><table><tr><th>Item</th><th>Value</th>"
+             "<th>Standard error</th></tr>")
+    for item, v, e in value_rows(a):
+        h.append(f"<tr><td>{_e(item)}</td>{_td(v, f)}{_td(e, f)}</tr>")
+    h.append("</table>")
+    if a.upper_bound:
+        h.append("<table><tr><td>Dual upper bound on the expanded NPV</td>"
+                 f"{_td(a.upper_bound['value'], f)}{_td(a.upper_bound['standard_error'], f)}"
+                 "</tr></table>")
+    h.append(f"<p><strong>Decision today:</strong> {_e(a.decision_today)}</p>")
+    h.append("<h2>Rights</h2><table><tr><th>Right</th><th>Type</th><th>Standalone</th>"
+             "<th>Standard error</th><th>Shapley share</th><th>Standard error</th></tr>")
+    for name, typ, sv, se, sh, she in right_rows(a):
+        h.append(f"<tr><td>{_e(name)}</td><td>{_e(typ)}</td>{_td(sv, f)}{_td(se, f)}"
+                 f"{_td(sh, f)}{_td(she, f)}</tr>")
+    h.append("</table><h2>When to use each right</h2><ul>")
+    h += [f"<li>{_e(r.rule)}</li>" for r in a.rights]
+    h.append("</ul><h2>Risk-neutral value and the real-world DCF</h2>")
+    h.append("<table><tr><td>Real-world DCF of the base flows</td>"
+             f"{_td(a.real_world_dcf['value'], f)}{_td(a.real_world_dcf['standard_error'], f)}"
+             f"</tr><tr><td>Risk-neutral present value</td>{_td(a.present_value, f)}"
+             f"{_td(a.standard_error['present_value'], f)}</tr></table>")
+    h.append(f"<p>{_e(dcf_sentence(a, f))}</p><h2>Figures</h2>")
+    for slug, (png, _) in pngs.items():
+        h.append(f"<h3>{_e(TITLES[slug])}</h3>{_img(png, TITLES[slug])}")
+    h.append(f"<p>{_e(NOT_DRAWN)}</p><p>{_e(sim_sentence(a))}</p>")
+    if a.warnings:
+        h.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{_e(w)}</li>" for w in a.warnings)
+                 + "</ul>")
+    h.append(f'<p class="caution">{_e(CAUTION_SIMULATION)}</p></body></html>')
+    return "\n".join(h) + "\n"
+
+
+def render_markdown(a, f: Fmt, pngs) -> str:
+    p = a.project
+    m = [f"# {p.name}", "", f"> {CAUTION_SIMULATION}", ""]
+    m += [f"**Warning:** {w}\n" for w in a.headline_warnings]
+    m += [f"{a.base}. Money in {f.unit_label}, valued today.", "", "## Values", "",
+          "| Item | Value | Standard error |", "|---|---:|---:|"]
+    m += [f"| {i} | {f.money(v)} | {f.money(e)} |" for i, v, e in value_rows(a)]
+    if a.upper_bound:
+        m += [f"| Dual upper bound on the expanded NPV | {f.money(a.upper_bound['value'])} | "
+              f"{f.money(a.upper_bound['standard_error'])} |"]
+    m += ["", f"**Decision today:** {a.decision_today}", "", "## Rights", "",
+          "| Right | Type | Standalone | Standard error | Shapley share | Standard error |",
+          "|---|---|---:|---:|---:|---:|"]
+    m += [f"| {n} | {t} | {f.money(sv)} | {f.money(se)} | {f.money(sh)} | {f.money(she)} |"
+          for n, t, sv, se, sh, she in right_rows(a)]
+    m += ["", "## When to use each right", ""] + [f"- {r.rule}" for r in a.rights]
+    m += ["", "## Risk-neutral value and the real-world DCF", "", dcf_sentence(a, f), "",
+          "## Figures", ""]
+    m += [f"![{TITLES[s]}](figures/{s}.png)\n" for s in pngs]
+    m += [NOT_DRAWN, "", sim_sentence(a), ""]
+    if a.warnings:
+        m += ["## Warnings", ""] + [f"- {w}" for w in a.warnings] + [""]
+    m += [f"> {CAUTION_SIMULATION}", ""]
+    return "\n".join(m)
+
+
+def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
+    """A4 pages: the text (caution first), one page per figure, the caution last."""
+    import textwrap
+
+    from matplotlib.backends.backend_pdf import PdfPages
+    from matplotlib.figure import Figure
+
+    pages = []
+    A4 = (8.27, 11.69)
+    lines = textwrap.wrap(CAUTION_SIMULATION, 95) + [""]
+    lines += [f"Warning: {x}" for w in a.headline_warnings for x in textwrap.wrap(w, 95)]
+    lines += [a.project.name, f"Money in {f.unit_label}, valued today.", ""]
+    lines += [f"{i[:58]:<60}{f.money(v):>14}  {('+- ' + f.money(e)) if e is not None else ''}"
+              for i, v, e in value_rows(a)]
+    lines += ["", "Standalone value of each right (alone on the static project):"]
+    lines += [f"  {n[:56]:<58}{f.money(sv):>14}  +- {f.money(se)}"
+              for n, _, sv, se, _, _ in right_rows(a)]
+    lines += [""] + textwrap.wrap(f"Decision today: {a.decision_today}", 95) + [""]
+    for r in a.rights:
+        lines += textwrap.wrap(f"- {r.rule}", 95)
+    lines += [""] + textwrap.wrap(dcf_sentence(a, f), 95) + [""]
+    lines += textwrap.wrap(NOT_DRAWN, 95) + textwrap.wrap(sim_sentence(a), 95)
+    with PdfPages(path) as pdf:
+        per_page = 72
+        for start in range(0, len(lines), per_page):          # text runs on, never cut
+            fig = Figure(figsize=A4)
+            for k, line in enumerate(lines[start:start + per_page]):
+                fig.text(0.06, 0.95 - k * 0.0125, line, fontsize=7, family="monospace",
+                         va="top")
+            pdf.savefig(fig)
+            pages.append("Values and rules" if start == 0 else "Values and rules (cont.)")
+        for slug, (_, fg) in pngs.items():
+            pdf.savefig(fg)
+            pages.append(TITLES[slug])
+        fig = Figure(figsize=A4)
+        for k, line in enumerate(textwrap.wrap(CAUTION_SIMULATION, 95)):
+            fig.text(0.06, 0.95 - k * 0.0125, line, fontsize=7, family="monospace", va="top")
+        pdf.savefig(fig)
+        pages.append("Caution")
+    return pages
+
+
+def write_all(a, tmp: Path, dpi: int, xlsx, source, marker: str) -> None:
+    """Write every file of the simulation report into ``tmp`` (the caller renames it)."""
+    from ..jsontext import to_json
+
+    f = Fmt(a.project)
+    pngs = draw(a, f, dpi)
+    (tmp / "figures").mkdir()
+    for slug, (png, _) in pngs.items():
+        (tmp / "figures" / f"{slug}.png").write_bytes(png)
+    pages = write_pdf(a, f, pngs, tmp / "report.pdf")
+    tables = csv_tables(a)
+    (tmp / "tables").mkdir()
+    for stem, df in tables.items():
+        df.to_csv(tmp / "tables" / f"{stem}.csv", index=False)
+    if xlsx is None:
+        try:
+            import openpyxl  # noqa: F401
+            xlsx = True
+        except ImportError:
+            xlsx = False
+    if xlsx:
+        with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
+            for stem, df in tables.items():
+                df.to_excel(xw, sheet_name=stem[:31], index=False)
+    (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
+    (tmp / "report.html").write_text(render_html(a, f, pngs), encoding="utf-8")
+    (tmp / "report.md").write_text(render_markdown(a, f, pngs), encoding="utf-8")
+    manifest = {"realopt": __version__, "project": a.project.name,
+                "source": None if source is None else str(source),
+                "figures": [s + ".png" for s in pngs], "tables": [t + ".csv" for t in tables],
+                "xlsx": bool(xlsx), "pdf_pages": pages}
+    (tmp / marker).write_text(json.dumps(manifest, indent=2) + "\n", encoding="utf-8")

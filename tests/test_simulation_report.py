@@ -1,0 +1,225 @@
+"""`realopt report` for simulation results (issue 10, item 5).
+
+What is checked, and against what: the source of every number is the SimulationAppraisal itself
+(the report must not compute a second version of any number), so the checks are that each
+numbered HTML cell carries a value of the result bit for bit and shows it through the one
+formatter; that results.json is ``to_dict()``; that the CSVs hold the result's numbers; that the
+caution opens and closes the HTML, Markdown and PDF; that each figure is a non-trivial PNG; and
+that a failure leaves no folder. The demo runs at reduced paths to keep the test short.
+"""
+from __future__ import annotations
+
+import html.parser
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import realopt
+from realopt.outputs import sim_report
+from realopt.outputs.report import MARKER, ReportError, write_report
+from realopt.outputs.tables import Fmt
+from realopt.project import load_project
+from realopt.simulation.result import CAUTION_SIMULATION
+
+ROOT = Path(__file__).resolve().parents[1]
+NUMBER = re.compile(r"-?\d[\d,]*\.\d+%?|-?\d+(?:\.\d+)?%")
+
+ONE_DRIVER = """
+project: {name: One-driver plant, currency: EUR, unit: million}
+valuation: simulation
+simulation: {paths: 2000, seed: 2}
+market: {risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.08}
+underlying:
+  years: [1, 10]
+  drivers:
+    X: {process: gbm, start: 10, drift: 0.08, volatility: 0.3, risk_neutral: {drift: 0.05}}
+  cash_flow: X
+investment: {cost: 85}
+rights:
+  - {name: Sell, type: abandon, salvage: 55, window: [1, 9], exercise: bermudan,
+     dates: [1, 2, 3, 4, 5, 6, 7, 8, 9]}
+"""
+
+
+def result_values(a) -> set:
+    """Every float of the result's JSON (the numbers the report may show)."""
+    out = set()
+
+    def walk(x):
+        if isinstance(x, bool):
+            return
+        if isinstance(x, (int, float)):
+            out.add(float(x))
+        elif isinstance(x, dict):
+            for v in x.values():
+                walk(v)
+        elif isinstance(x, (list, tuple)):
+            for v in x:
+                walk(v)
+
+    walk(a.to_dict())
+    out.add(-a.investment_pv)              # shown as a negative line of the value table
+    return out
+
+
+def allowed_tokens(a) -> set:
+    f = Fmt(a.project)
+    toks = {f.money(x) for x in result_values(a)} | {f.pct(x) for x in result_values(a)}
+    for text in (a.decision_today, a.base, *a.warnings, *a.headline_warnings,
+                 *[r.rule for r in a.rights], CAUTION_SIMULATION):
+        toks |= set(NUMBER.findall(text))
+    return toks
+
+
+class _Cells(html.parser.HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.cells, self.parts, self._cell, self._skip = [], [], None, 0
+
+    def handle_starttag(self, tag, attrs):
+        d = dict(attrs)
+        if tag == "style":
+            self._skip += 1
+        if tag == "td" and "data-value" in d:
+            self._cell = [float(d["data-value"]), ""]
+
+    def handle_endtag(self, tag):
+        if tag == "style":
+            self._skip -= 1
+        if tag == "td" and self._cell is not None:
+            self.cells.append(tuple(self._cell))
+            self._cell = None
+
+    def handle_data(self, data):
+        if not self._skip:
+            self.parts.append(data)
+        if self._cell is not None:
+            self._cell[1] += data
+
+
+@pytest.fixture(scope="module")
+def river(tmp_path_factory):
+    p = load_project(ROOT / "projects" / "river_ccgt.yaml", {"simulation.paths": 3000})
+    a = realopt.appraise(p, progress=False)
+    out = tmp_path_factory.mktemp("rep") / "river-report"
+    write_report(a, out, dpi=72)
+    return a, out
+
+
+def test_every_html_cell_is_a_number_of_the_result(river):
+    a, out = river
+    page = _Cells()
+    page.feed((out / "report.html").read_text(encoding="utf-8"))
+    values, f = result_values(a), Fmt(a.project)
+    assert len(page.cells) >= 15
+    for value, text in page.cells:
+        assert value in values, (text, value)
+        assert text == f.money(value)
+    stray = set(NUMBER.findall(" ".join(page.parts))) - allowed_tokens(a)
+    assert not stray
+
+
+def test_markdown_numbers_are_the_results_and_the_check_can_fail(river):
+    a, out = river
+    md = re.sub(r"!\[[^\]]*\]\([^)]*\)", "", (out / "report.md").read_text(encoding="utf-8"))
+    allowed = allowed_tokens(a)
+    assert not set(NUMBER.findall(md)) - allowed
+    f = Fmt(a.project)
+    assert f.money(a.expanded_npv * 1.001 + 0.013) not in allowed   # a second computation
+
+
+def test_headline_and_dcf_beside_the_risk_neutral_value(river):
+    a, out = river
+    f = Fmt(a.project)
+    text = (out / "report.md").read_text(encoding="utf-8")
+    for x in (a.present_value, a.static_npv, a.expanded_npv, a.flexibility_value,
+              a.real_world_dcf["value"], a.standard_error["expanded_npv"],
+              *[r.shapley_value for r in a.rights], *[r.shapley_standard_error for r in a.rights]):
+        assert f.money(x) in text
+    assert "price of the drivers' risk" in text
+    assert sim_report.NOT_DRAWN in text
+
+
+def test_caution_first_and_last_in_every_format(river):
+    a, out = river
+    for name in ("report.html", "report.md"):
+        t = (out / name).read_text(encoding="utf-8")
+        first, last = t.find("Caution"), t.rfind("Caution")
+        assert first != last and first < 600 and len(t) - last < len(CAUTION_SIMULATION) + 80
+    pdf = (out / "report.pdf").read_bytes()
+    assert pdf.startswith(b"%PDF")
+    manifest = json.loads((out / MARKER).read_text())
+    assert manifest["pdf_pages"][0] == "Values and rules" and manifest["pdf_pages"][-1] == "Caution"
+    assert sum(p in sim_report.TITLES.values() for p in manifest["pdf_pages"]) == len(
+        manifest["figures"])
+
+
+def test_results_json_and_csvs_hold_the_result(river):
+    a, out = river
+    assert json.loads((out / "results.json").read_text()) == json.loads(
+        realopt.jsontext.to_json(a.to_dict()))
+    vb = pd.read_csv(out / "tables" / "value_bridge.csv")
+    assert vb["value"].tolist() == [v for _, v, _ in sim_report.value_rows(a)]
+    cu = pd.read_csv(out / "tables" / "chance_of_use.csv")
+    r = a.rights[-1]
+    got = cu[cu.right == r.name]
+    assert np.array_equal(got["chance_real_world"].to_numpy(), np.asarray(r.use_real_world))
+    assert {f"share_{m}_real_world" for m in r.mode_shares} <= set(cu.columns)
+
+
+def test_each_figure_is_a_non_trivial_png(river):
+    a, out = river
+    import matplotlib.image as mpimg
+
+    names = sorted(p.name for p in (out / "figures").glob("*.png"))
+    assert names == ["chance_of_use.png", "decision_maps.png", "fan.png", "value_bridge.png"]
+    for n in names:
+        img = mpimg.imread(out / "figures" / n)
+        assert img.shape[0] > 150 and img.shape[1] > 300
+        assert np.unique(img.reshape(-1, img.shape[-1]), axis=0).shape[0] > 20   # not blank
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert page.count("data:image/png;base64,") == len(names)
+    assert "http://" not in page and "https://" not in page
+
+
+def test_one_driver_draws_thresholds(tmp_path):
+    f = tmp_path / "plant.yaml"
+    f.write_text(ONE_DRIVER)
+    a = realopt.appraise(load_project(f), progress=False)
+    assert any(r.thresholds for r in a.rights)
+    write_report(a, tmp_path / "rep", dpi=72)
+    assert (tmp_path / "rep" / "figures" / "thresholds.png").stat().st_size > 5000
+    assert not (tmp_path / "rep" / "figures" / "decision_maps.png").exists()
+
+
+def test_failure_while_drawing_leaves_nothing(tmp_path, monkeypatch):
+    f = tmp_path / "plant.yaml"
+    f.write_text(ONE_DRIVER)
+    a = realopt.appraise(load_project(f), progress=False)
+
+    def boom(*_):
+        raise RuntimeError("injected")
+
+    monkeypatch.setattr(sim_report, "fig_fan", boom)
+    with pytest.raises(ReportError):
+        write_report(a, tmp_path / "rep", dpi=72)
+    assert not (tmp_path / "rep").exists()
+    assert [p.name for p in tmp_path.iterdir()] == ["plant.yaml"]
+
+
+def test_report_command_on_the_simulation_demo(tmp_path):
+    env = {"PYTHONPATH": str(ROOT)}
+    r = subprocess.run([sys.executable, "-m", "realopt", "report",
+                        str(ROOT / "projects" / "river_ccgt.yaml"), "--set",
+                        "simulation.paths=2000", "-o", str(tmp_path / "out")],
+                       capture_output=True, text=True, env=env)
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    d = json.loads((tmp_path / "out" / "results.json").read_text())
+    assert d["method"] == "simulation" and d["simulation"]["paths"] == 2000
