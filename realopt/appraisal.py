@@ -27,7 +27,7 @@ from .lattice import Grid, Solution, build_grid, exercise_steps, occupancy, solv
 from .model import Project
 from .rights import (Action, StateGraph, base_description, base_scale_fixed, build_state_graph,
                      held_switches, prepared_rights, requirement_closure, structure_warnings,
-                     usable_subset)
+                     threshold_side, usable_subset)
 from .underlying import ResolvedUnderlying, resolve
 
 MAX_RIGHTS = 10
@@ -527,7 +527,7 @@ def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValu
         return occupancy(sol, (grid.probability, grid.real_probability), absorb=set(ids),
                          at=())[1]
     rn_use, rw_use, measure, mode_shares = r.chance_of_use(graph, edge_ids, occ, first_uses)
-    side = _side(thr)
+    side = threshold_side(thr)
     return RightValue(
         name=r.name, type=r.kind, window=tuple(float(x) for x in r.window), exercise=r.exercise,
         standalone_value=float(alone), shapley_value=float(share), side=side,
@@ -537,19 +537,6 @@ def _right_value(r, graph, sol, share, alone, occ, sample, fmt, v0) -> RightValu
         use_measure=measure, mode_shares=mode_shares,
         rule=_rule(r, [t for t, ok in zip(thr, _plausible_all(grid, thr)) if ok], side, fmt, v0,
                    float(min(1.0, rw_use[-1])), grid.horizon))
-
-
-def _side(thr) -> str | None:
-    live = [t for t in thr if not t.never and (t.lower is not None or t.upper is not None)]
-    if not live:
-        return None
-    ab = sum(1 for t in live if t.lower is not None and t.upper is None)
-    be = sum(1 for t in live if t.upper is not None and t.lower is None)
-    if ab >= be and ab > 0:
-        return "above"
-    if be > ab:
-        return "below"
-    return "band"
 
 
 def _when(r) -> str:

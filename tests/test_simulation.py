@@ -523,3 +523,30 @@ def test_a_right_with_no_exercise_date_adds_exactly_zero():
     assert late.shapley_value == 0.0 and late.standalone_value == 0.0
     assert late.shapley_standard_error == 0.0
     assert any("Late sale" in w for w in a.warnings)
+
+
+def test_shutdown_rule_on_the_drivers_names_each_move(tmp_path):
+    """A registered right type other than switch (shutdown: a two-mode switch) is valued and
+    worded by its type under simulation too: the rule names both moves, shut and restart, on
+    the sides they are used (shut when the price falls, restart when it rises: common
+    practice for a plant whose margin rises with its output price)."""
+    from realopt import appraise, load_project
+
+    f = tmp_path / "kiln.yaml"
+    f.write_text(
+        "valuation: simulation\n"
+        "simulation: {paths: 4000, seed: 3, steps_per_year: 4, basis: 2}\n"
+        "project: {name: Kiln on prices}\n"
+        "market: {risk_free_rate: 0.03, discount_rate: 0.08}\n"
+        "underlying:\n  years: [1, 8]\n  drivers:\n"
+        "    price: {process: gbm, start: 50, drift: 0.01, volatility: 0.3,"
+        " risk_neutral: {risk_premium: 0.2}}\n"
+        "  cash_flow: 0.4 * price - 18\n"
+        "investment: {cost: 10}\n"
+        "rights:\n  - {name: Shut the kiln, type: shutdown, cost: 0.5, restart_cost: 1.0,"
+        " maintenance: 0.8, window: [0, 8]}\n")
+    a = appraise(load_project(f))
+    rule = a.rights[0].rule
+    assert "operating -> shut if price falls below" in rule
+    assert "shut -> operating once price exceeds" in rule
+    assert a.flexibility_value > 3 * a.to_dict()["standard_error"]["flexibility_value"]

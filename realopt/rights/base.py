@@ -140,3 +140,21 @@ class BaseRight(Right):
         rn_use = np.cumsum(occ[1][0][:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(occ[1][1][:, edge_ids].sum(axis=1))
         return rn_use, rw_use, "chance that the right has been exercised by each date", None
+
+
+def threshold_side(thresholds) -> str | None:
+    """Where a right's exercise region mostly lies against the state variable: "above" (use it
+    when the value exceeds a threshold), "below", "band", or None (never used). ``thresholds``
+    have ``lower``/``upper`` bounds (None: unbounded) and ``never``; shared by the lattice and
+    the simulation's rules."""
+    live = [t for t in thresholds
+            if not t.never and (t.lower is not None or t.upper is not None)]
+    if not live:
+        return None
+    ab = sum(1 for t in live if t.lower is not None and t.upper is None)
+    be = sum(1 for t in live if t.upper is not None and t.lower is None)
+    if ab >= be and ab > 0:
+        return "above"
+    if be > ab:
+        return "below"
+    return "band"

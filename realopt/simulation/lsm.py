@@ -679,7 +679,7 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
     cols = np.arange(n)
     ctrl = np.zeros(n) if mart is not None else None
     sw_edges = {r.name: np.array([i for i, e in enumerate(graph.edges) if e.right == r.name])
-                for r in graph.rights if r.kind == "switch"} if record else {}
+                for r in graph.rights if r.modal} if record else {}
     ever = {name: np.zeros(n, dtype=bool) for name in sw_edges}
     first = {name: np.zeros(T) for name in sw_edges}
     for k in range(T):

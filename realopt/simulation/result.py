@@ -20,7 +20,7 @@ import numpy as np
 from ..errors import ValuationError
 from ..model import Project, Switch
 from ..rights import (base_description, build_state_graph, prepared_rights,
-                      requirement_closure, structure_warnings, usable_subset)
+                      requirement_closure, structure_warnings, threshold_side, usable_subset)
 from . import lsm
 from .paths import change_measure, dynamics, simulate
 
@@ -679,35 +679,14 @@ def _fan(prob: lsm.Problem, x: np.ndarray):
 # --- rules in the drivers' units -----------------------------------------------------------------
 
 def _primary_states(r, graph) -> list[int]:
-    """States the rule of ``r`` is read from: invested, the rights r requires used, switches at
-    their start mode (a required switch in its first other mode); a switch: each of its modes."""
-    if r.kind == "defer":
-        return [graph.initial]
-    by = {q.name: q for q in graph.rights}
-    closure = requirement_closure(graph.rights, r.name) - {r.name}
-    used = frozenset(q for q in closure if by[q].kind in ("expand", "contract"))
-    switches = [s for s in graph.rights if isinstance(s, Switch)]
-    modes = [s.start for s in switches]
-    for q in closure:
-        if isinstance(by[q], Switch):
-            k = switches.index(by[q])
-            modes[k] = next(m.name for m in by[q].modes if m.name != by[q].start)
-    if isinstance(r, Switch):
-        k = switches.index(r)
-        out = []
-        for m in r.modes:
-            mm = list(modes)
-            mm[k] = m.name
-            idx = graph.index(used=used, modes=tuple(mm))
-            if idx is not None:
-                out.append(idx)
-        return out
-    idx = graph.index(used=used, modes=tuple(modes))
-    return [] if idx is None else [idx]
+    """States the rule of ``r`` is read from (the right type says which: realopt.rights)."""
+    return r.primary_states(graph, requirement_closure(graph.rights, r.name) - {r.name})
 
 
-def _action(e) -> str:
-    return e.label if e.kind == "switch" else e.kind
+def _action(graph, e) -> str:
+    """The action named in rules and maps (the right type's wording: a modal right names the
+    move)."""
+    return next(r for r in graph.rights if r.name == e.right).action_text(e)
 
 
 def _gains(prob, pol, k, s, xg):
@@ -784,7 +763,7 @@ def _rules(prob, pol, x_fit, stats, spec):
                             else:
                                 b = None if b > q975[k][j] else b
                         thr.append(DriverThreshold(year, graph.states[s].label,
-                                                   _action(graph.edges[e_id]), prob.names[j],
+                                                   _action(graph, graph.edges[e_id]), prob.names[j],
                                                    a, b, never))
                 cf_fit.append((s, k, eids))
         thresholds[r.name] = tuple(sorted(thr, key=lambda t: t.year))
@@ -804,7 +783,7 @@ def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
     by_action: dict = {}
     for s, k, eids in cases:
         for e_id in eids:
-            by_action.setdefault((_action(graph.edges[e_id]), s), []).append((k, e_id))
+            by_action.setdefault((_action(graph, graph.edges[e_id]), s), []).append((k, e_id))
     out = []
     for (action, s), items in by_action.items():
         pick = np.unique(np.round(np.linspace(0, len(items) - 1,
@@ -884,7 +863,7 @@ def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
                 best = np.where(better, gains[e_id], best)
                 code = np.where(better, c, code)
             labels = ("carry on" if graph.states[s].invested else "wait",) + tuple(
-                f"{graph.edges[e].right}: {_action(graph.edges[e])}" for e in eids)
+                f"{graph.edges[e].right}: {_action(graph, graph.edges[e])}" for e in eids)
             out.append(DriverMap(state=graph.states[s].label, year=float(prob.times[k]),
                                  actions=labels, x_driver=names[a], y_driver=names[b],
                                  x_values=xs, y_values=ys, codes=code.reshape(size, size),
@@ -922,7 +901,7 @@ def _right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se, thr, cf_r
         rn_use = np.cumsum(res_rn.exercised[:, edge_ids].sum(axis=1))
         rw_use = np.cumsum(res_rw.exercised[:, edge_ids].sum(axis=1))
         measure = "chance that the right has been exercised by each date"
-    side = _side(thr)
+    side = threshold_side(thr)
     rule = _rule_text(r, thr, side, cf_rule, maps, fmt, float(rw_use[-1]) if len(rw_use) else 0.0,
                       float(max(rw_use.max(), 0.0)) if len(rw_use) else 0.0,
                       float(prob.times[-1]))
@@ -934,19 +913,6 @@ def _right_value(r, graph, prob, res_rn, res_rw, sh, sh_se, al, al_se, thr, cf_r
         use_risk_neutral=tuple(float(min(1.0, x)) for x in rn_use[sample]),
         use_real_world=tuple(float(min(1.0, x)) for x in rw_use[sample]),
         use_measure=measure, rule=rule, mode_shares=mode_shares)
-
-
-def _side(thr) -> str | None:
-    live = [t for t in thr if not t.never and (t.lower is not None or t.upper is not None)]
-    if not live:
-        return None
-    ab = sum(1 for t in live if t.lower is not None and t.upper is None)
-    be = sum(1 for t in live if t.upper is not None and t.lower is None)
-    if ab >= be and ab > 0:
-        return "above"
-    if be > ab:
-        return "below"
-    return "band"
 
 
 def _when(r) -> str:
@@ -963,15 +929,8 @@ def _when(r) -> str:
 
 
 def _what(r) -> str:
-    if r.kind == "defer":
-        return f"commit the investment (cost {r.cost.describe()})"
-    if r.kind == "expand":
-        return f"expand scale by {r.scale:.0%} for {r.cost.describe()}"
-    if r.kind == "contract":
-        return f"contract scale by {r.scale:.0%} receiving {r.savings.describe()}"
-    if r.kind == "abandon":
-        return f"abandon for salvage {r.salvage.describe()}"
-    return "switch between modes " + ", ".join(m.name for m in r.modes)
+    """The rule's action in words (the right type's own wording, amounts as plain numbers)."""
+    return r.what("{:,.2f}")
 
 
 def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> str:
