@@ -223,3 +223,22 @@ def test_report_command_on_the_simulation_demo(tmp_path):
     assert "Traceback" not in r.stderr
     d = json.loads((tmp_path / "out" / "results.json").read_text())
     assert d["method"] == "simulation" and d["simulation"]["paths"] == 2000
+
+
+def test_value_table_and_bridge_add_up_down_each_column(river):
+    """Reading down the value table (and the bridge) gives the totals: the Shapley shares add
+    up to the flexibility value, so the interaction between the rights sits beside the values
+    alone in the rights table, never among the shares (common practice for a value bridge)."""
+    from realopt.outputs.sim_report import INTERACTION, csv_tables, value_rows
+
+    a, _ = river
+    rows = {item: v for item, v, _ in value_rows(a)}
+    assert not any("nteraction" in item for item in rows)
+    shares = sum(v for item, v in rows.items() if item.endswith("Shapley share"))
+    assert shares == pytest.approx(rows["Flexibility value"], abs=1e-9)
+    assert rows["Static NPV"] + rows["Flexibility value"] == pytest.approx(
+        rows["Expanded NPV"], abs=1e-9)
+    rights = csv_tables(a)["rights"]
+    alone = rights["standalone_value"].sum()          # values alone + the interaction row
+    assert INTERACTION in set(rights["right"])
+    assert alone == pytest.approx(a.flexibility_value, abs=1e-9)

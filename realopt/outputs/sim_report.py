@@ -42,8 +42,9 @@ def value_rows(a):
             ("Static NPV", a.static_npv, se["present_value"])]
     rows += [(f"{r.name} ({r.type}), Shapley share", r.shapley_value, r.shapley_standard_error)
              for r in a.rights]
-    rows += [("Interaction between rights", a.interaction, None),
-             ("Flexibility value", a.flexibility_value, se["flexibility_value"]),
+    # the Shapley shares add up to the flexibility value: the interaction between the rights
+    # belongs beside the values alone (the rights table), not in this column
+    rows += [("Flexibility value", a.flexibility_value, se["flexibility_value"]),
              ("Expanded NPV", a.expanded_npv, se["expanded_npv"])]
     return rows
 
@@ -54,12 +55,16 @@ def right_rows(a):
              r.shapley_standard_error) for r in a.rights]
 
 
+INTERACTION = "Interaction between the rights"   # flexibility less the values alone
+
+
 def csv_tables(a) -> dict:
     t = {"value_bridge": pd.DataFrame(value_rows(a),
                                       columns=["item", "value", "standard_error"]),
          "rights": pd.DataFrame(right_rows(a), columns=[
              "right", "type", "standalone_value", "standalone_standard_error",
              "shapley_value", "shapley_standard_error"])}
+    t["rights"].loc[len(t["rights"])] = [INTERACTION, "", a.interaction, None, None, None]
     rows = []
     for r in a.rights:
         for k, y in enumerate(r.use_years):
@@ -90,8 +95,8 @@ def _fig(h, w=7.0):
 def fig_bridge(a, f: Fmt):
     rows = [("Static NPV", a.static_npv, a.standard_error["present_value"])]
     rows += [(r.name, r.shapley_value, r.shapley_standard_error) for r in a.rights]
-    rows += [("Interaction", a.interaction, 0.0),
-             ("Expanded NPV", a.expanded_npv, a.standard_error["expanded_npv"])]
+    rows += [("Expanded NPV", a.expanded_npv, a.standard_error["expanded_npv"])]
+    alone = {r.name: r.standalone_value for r in a.rights}
     fig = _fig(3.6)
     ax = fig.add_subplot()
     base, x = 0.0, np.arange(len(rows))
@@ -103,7 +108,8 @@ def fig_bridge(a, f: Fmt):
         top = bottom + v
         if e:
             ax.errorbar(k, top, yerr=e, color="black", capsize=4, lw=1)
-        ax.annotate(f.money(v), (k, max(top, bottom)), ha="center", va="bottom", fontsize=7,
+        label = f.money(v) if total else f"{f.money(v)}\n(alone {f.money(alone[name])})"
+        ax.annotate(label, (k, max(top, bottom)), ha="center", va="bottom", fontsize=7,
                     xytext=(0, 3), textcoords="offset points")
         base = top if not total else v
     ax.axhline(0, color="grey", lw=0.8)
@@ -310,6 +316,8 @@ def render_html(a, f: Fmt, pngs) -> str:
     for name, typ, sv, se, sh, she in right_rows(a):
         h.append(f"<tr><td>{_e(name)}</td><td>{_e(typ)}</td>{_td(sv, f)}{_td(se, f)}"
                  f"{_td(sh, f)}{_td(she, f)}</tr>")
+    h.append(f"<tr><td>{INTERACTION}</td><td></td>{_td(a.interaction, f)}<td></td><td></td>"
+             "<td></td></tr>")
     h.append("</table><h2>When to use each right</h2><ul>")
     h += [f"<li>{_e(r.rule)}</li>" for r in a.rights]
     h.append("</ul><h2>Risk-neutral value and the real-world DCF</h2>")
@@ -343,6 +351,7 @@ def render_markdown(a, f: Fmt, pngs) -> str:
           "|---|---|---:|---:|---:|---:|"]
     m += [f"| {n} | {t} | {f.money(sv)} | {f.money(se)} | {f.money(sh)} | {f.money(she)} |"
           for n, t, sv, se, sh, she in right_rows(a)]
+    m += [f"| {INTERACTION} |  | {f.money(a.interaction)} |  |  |  |"]
     m += ["", "## When to use each right", ""] + [f"- {r.rule}" for r in a.rights]
     m += ["", "## Risk-neutral value and the real-world DCF", "", dcf_sentence(a, f), "",
           "## Figures", ""]
@@ -371,6 +380,7 @@ def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
     lines += ["", "Standalone value of each right (alone on the static project):"]
     lines += [f"  {n[:56]:<58}{f.money(sv):>14}  +- {f.money(se)}"
               for n, _, sv, se, _, _ in right_rows(a)]
+    lines += [f"  {INTERACTION:<58}{f.money(a.interaction):>14}"]
     lines += [""] + textwrap.wrap(f"Decision today: {a.decision_today}", 95) + [""]
     for r in a.rights:
         lines += textwrap.wrap(f"- {r.rule}", 95)
