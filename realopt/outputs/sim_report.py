@@ -113,6 +113,7 @@ def fig_bridge(a, f: Fmt):
                     xytext=(0, 3), textcoords="offset points")
         base = top if not total else v
     ax.axhline(0, color="grey", lw=0.8)
+    ax.margins(y=0.16)                        # room for the two-line labels above the bars
     ax.set_xticks(x, [textwrap_label(n) for n, _, _ in rows], fontsize=7)
     ax.set_ylabel(f"{f.unit_label} (today)")
     ax.set_title("Static NPV, each right's Shapley share, expanded NPV (+- one standard error)",
