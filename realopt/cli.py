@@ -443,8 +443,8 @@ COMMANDS = (
     _register_check,
     _register_appraise,
     "realopt.report_command:register",
-    "realopt.sweep:register",
-    "realopt.portfolio:register",
+    "realopt.sweep_command:register",
+    "realopt.portfolio_command:register",
 )
 
 

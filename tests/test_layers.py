@@ -24,16 +24,14 @@ LAYERS = (
     ("appraisal", ("realopt.appraisal",)),
     ("outputs", ("realopt.outputs", "realopt.outputs.*", "realopt.sweep", "realopt.portfolio",
                  "realopt.fanout")),
-    ("cli", ("realopt.cli", "realopt.report_command", "realopt.__main__")),
+    ("cli", ("realopt.cli", "realopt.report_command", "realopt.sweep_command",
+             "realopt.portfolio_command", "realopt.__main__")),
 )
 
 # Known back edges, each with its reason; the test fails when one disappears, so the list shrinks
 # as the debt is paid. sweep and portfolio hold their own command wiring (register/run) and take
 # the shared project options and printing helpers from the command line.
-KNOWN_BACK_EDGES = {
-    ("realopt.sweep", "realopt.cli"): "sweep's register/run use cli's options and printing",
-    ("realopt.portfolio", "realopt.cli"): "portfolio's register/run use cli's options and printing",
-}
+KNOWN_BACK_EDGES: dict = {}
 
 
 def _layer(module: str) -> int | None:
