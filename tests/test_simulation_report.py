@@ -178,7 +178,8 @@ def test_each_figure_is_a_non_trivial_png(river):
     import matplotlib.image as mpimg
 
     names = sorted(p.name for p in (out / "figures").glob("*.png"))
-    assert names == ["chance_of_use.png", "decision_maps.png", "fan.png", "value_bridge.png"]
+    assert names == ["cash_flow_fan.png", "chance_of_use.png", "decision_maps.png", "fan.png",
+                     "value_bridge.png"]
     for n in names:
         img = mpimg.imread(out / "figures" / n)
         assert img.shape[0] > 150 and img.shape[1] > 300
@@ -242,3 +243,30 @@ def test_value_table_and_bridge_add_up_down_each_column(river):
     alone = rights["standalone_value"].sum()          # values alone + the interaction row
     assert INTERACTION in set(rights["right"])
     assert alone == pytest.approx(a.flexibility_value, abs=1e-9)
+
+
+def test_cash_flow_fan_matches_the_lognormal_quantiles(tmp_path):
+    # cash_flow = X - K with X a real-world gbm: the q-th percentile of the flow at t is
+    # start*exp((drift - vol^2/2) t + z_q vol sqrt(t)) - K (lognormal quantile, closed form).
+    f = tmp_path / "p.yaml"
+    f.write_text(ONE_DRIVER.replace("cash_flow: X", "cash_flow: X - 12")
+                 .replace("paths: 2000", "paths: 8000"))
+    a = realopt.appraise(load_project(f), progress=False)
+    from statistics import NormalDist
+    t = np.asarray(a.fan_years)
+    ok = np.isfinite(a.cash_flow_fan[50])
+    assert ok.sum() >= 5
+    for q in (5, 25, 50, 75, 95):
+        z = NormalDist().inv_cdf(q / 100)
+        exact = 10 * np.exp((0.08 - 0.045) * t + z * 0.3 * np.sqrt(t)) - 12
+        # sampling tolerance: a sample quantile's se is sqrt(p(1-p)/n)/density; at n = 8000
+        # (antithetic pairs or not) and the 5th/95th percentile the relative se of the
+        # lognormal quantile is below 0.3*sqrt(t)*0.0024/0.103 ~ 0.7% * sqrt(t); 6% of the
+        # price (about 8 se at t = 10 years) cannot be met by a wrong drift or volatility.
+        price = exact[ok] + 12
+        assert np.all(np.abs(a.cash_flow_fan[q][ok] - exact[ok]) < 0.06 * price), q
+    stack = np.array([a.cash_flow_fan[q][ok] for q in (5, 25, 50, 75, 95)])
+    assert np.all(np.diff(stack, axis=0) >= 0)
+    assert (a.cash_flow_fan[5][ok] < 0).any()     # the band crosses zero: a case to read off
+    write_report(a, tmp_path / "rep", dpi=72)
+    assert (tmp_path / "rep" / "figures" / "cash_flow_fan.png").stat().st_size > 2000

@@ -25,12 +25,20 @@ from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
              "results yet.")
-FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan")
+FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan",
+           "cash_flow_fan")
 TITLES = {"value_bridge": "Value bridge (error bars: one standard error)",
           "decision_maps": "Decision maps in the plane of two drivers",
           "thresholds": "Exercise thresholds in the driver's units",
           "chance_of_use": "Chance of use",
-          "fan": "Fan of the drivers (real-world paths)"}
+          "fan": "Fan of the drivers (real-world paths)",
+          "cash_flow_fan": "Fan of the base cash flow per year (real-world paths)"}
+CAPTIONS = {"cash_flow_fan": (
+    "Percentiles 5, 25, 50, 75 and 95 of the yearly cash flow of the project as given (no "
+    "right used, before tax) over the real-world valuing paths. Where a band lies below the "
+    "zero line, at least that share of paths has a negative margin that year: below zero at "
+    "the 5th percentile means more than one year in twenty loses money, at the median more "
+    "than half.")}
 
 
 # ------------------------------------------------------------------------ tables
@@ -234,11 +242,32 @@ def fig_fan(a):
     return fig
 
 
+def fig_cash_flow_fan(a):
+    """Percentiles of the base state's yearly cash flow at the fan's dates (NaN: no flow)."""
+    q = a.cash_flow_fan
+    y = np.asarray(a.fan_years)
+    ok = np.isfinite(q[50])
+    fig = _fig(2.6)
+    ax = fig.add_subplot(1, 1, 1)
+    ax.fill_between(y[ok], q[5][ok], q[95][ok], color="#a5674a", alpha=0.2,
+                    label="5-95th percentile")
+    ax.fill_between(y[ok], q[25][ok], q[75][ok], color="#a5674a", alpha=0.4,
+                    label="25-75th percentile")
+    ax.plot(y[ok], q[50][ok], color="#a5674a", label="median")
+    ax.axhline(0.0, color="black", lw=0.8)
+    ax.set_ylabel(f"cash flow per year ({a.project.currency} {a.project.unit})", fontsize=7)
+    ax.set_xlabel("years from today", fontsize=7)
+    ax.tick_params(labelsize=6)
+    ax.legend(fontsize=6, loc="upper left")
+    return fig
+
+
 def draw(a, f: Fmt, dpi: int) -> dict:
     """slug -> PNG bytes, each figure drawn once."""
     makers = {"value_bridge": lambda: fig_bridge(a, f), "decision_maps": lambda: fig_maps(a),
               "thresholds": lambda: fig_thresholds(a),
-              "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a)}
+              "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a),
+              "cash_flow_fan": lambda: fig_cash_flow_fan(a)}
     out = {}
     for slug in FIGURES:
         if slug == "decision_maps" and not any(
@@ -249,6 +278,9 @@ def draw(a, f: Fmt, dpi: int) -> dict:
         if slug == "chance_of_use" and not a.rights:
             continue
         if slug == "fan" and not a.fan:
+            continue
+        if slug == "cash_flow_fan" and not np.isfinite(
+                np.asarray(a.cash_flow_fan.get(50, [np.nan]))).any():
             continue
         fig = makers[slug]()
         buf = io.BytesIO()
@@ -329,6 +361,8 @@ def render_html(a, f: Fmt, pngs) -> str:
     h.append(f"<p>{_e(dcf_sentence(a, f))}</p><h2>Figures</h2>")
     for slug, (png, _) in pngs.items():
         h.append(f"<h3>{_e(TITLES[slug])}</h3>{_img(png, TITLES[slug])}")
+        if slug in CAPTIONS:
+            h.append(f"<p>{_e(CAPTIONS[slug])}</p>")
     h.append(f"<p>{_e(NOT_DRAWN)}</p><p>{_e(sim_sentence(a))}</p>")
     if a.warnings:
         h.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{_e(w)}</li>" for w in a.warnings)
@@ -356,7 +390,8 @@ def render_markdown(a, f: Fmt, pngs) -> str:
     m += ["", "## When to use each right", ""] + [f"- {r.rule}" for r in a.rights]
     m += ["", "## Risk-neutral value and the real-world DCF", "", dcf_sentence(a, f), "",
           "## Figures", ""]
-    m += [f"![{TITLES[s]}](figures/{s}.png)\n" for s in pngs]
+    for s in pngs:
+        m += [f"![{TITLES[s]}](figures/{s}.png)\n"] + ([CAPTIONS[s], ""] if s in CAPTIONS else [])
     m += [NOT_DRAWN, "", sim_sentence(a), ""]
     if a.warnings:
         m += ["## Warnings", ""] + [f"- {w}" for w in a.warnings] + [""]

@@ -130,6 +130,8 @@ class SimulationAppraisal:
     base: str = ""                            # the base project every subset values
     headline_warnings: tuple[str, ...] = ()   # the warnings that bear on the headline numbers
     cash_flow_value: float | None = None      # risk-neutral value of the file's plain flows
+    cash_flow_fan: dict = field(default_factory=dict)  # percentile -> array at fan_years (real
+    #                                         world; money per year; NaN where no flow is paid)
 
     @property
     def present_value_stderr(self) -> float:
@@ -540,7 +542,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     x_rw = change_measure(x_val, prob.times, dyn, dyn_rw)     # x_val is not needed after this
     res_rw = lsm.run(prob, pol, x_rw, record=True, progress=prog)
     rw_dcf, rw_se = _real_world_dcf(prob, x_rw, anti)
-    fan_years, fan = _fan(prob, x_rw)
+    fan_years, fan, cf_fan = _fan(prob, x_rw)
     del x_rw
 
     upper = None
@@ -590,7 +592,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         real_world_dcf={"value": rw_dcf, "standard_error": rw_se,
                         "discount_rate": project.market.discount_rate},
         warnings=tuple(warnings), state_graph=graph, driver_maps=tuple(maps),
-        fan_years=fan_years, fan=fan,
+        fan_years=fan_years, fan=fan, cash_flow_fan=cf_fan,
         base=base_description(rights, "the cash flows of the drivers as given"),
         headline_warnings=tuple(headline), cash_flow_value=plain_value)
 
@@ -666,14 +668,23 @@ def _real_world_dcf(prob: lsm.Problem, x: np.ndarray, anti: bool):
 
 
 def _fan(prob: lsm.Problem, x: np.ndarray):
-    """Real-world percentiles (5, 25, 50, 75, 95) of each stochastic driver at each date."""
+    """Real-world percentiles (5, 25, 50, 75, 95) of each stochastic driver at each date, and
+    of the base state's cash flow as a rate per year (the step's flow over its year fraction,
+    before tax; NaN at dates that pay none), over the same first 20,000 valuing paths."""
     qs = (5, 25, 50, 75, 95)
     ks = _sample(prob.T, 61)
     out = {}
     for i, name in enumerate(prob.names):
         pc = np.percentile(x[ks, i, :20000], qs, axis=1)
         out[name] = {q: pc[j] for j, q in enumerate(qs)}
-    return prob.times[ks].copy(), out
+    sflows = prob.state_flows(build_state_graph(()))
+    cf = np.full((len(qs), len(ks)), np.nan)
+    for j, k in enumerate(ks):
+        w = prob.weight[k] if k >= 1 else 0.0
+        if w:
+            flow = prob.flows(k, x[k - 1, :, :20000], x[k, :, :20000], sflows)[0] / w
+            cf[:, j] = np.percentile(flow, qs)
+    return prob.times[ks].copy(), out, {q: cf[j] for j, q in enumerate(qs)}
 
 
 # --- rules in the drivers' units -----------------------------------------------------------------
