@@ -143,7 +143,7 @@ def test_headline_and_dcf_beside_the_risk_neutral_value(river):
               *[r.shapley_value for r in a.rights], *[r.shapley_standard_error for r in a.rights]):
         assert f.money(x) in text
     assert "price of the drivers' risk" in text
-    assert sim_report.NOT_DRAWN in text
+    assert sim_report.not_drawn({"convergence": None}) in text      # the tornado note only
 
 
 def test_caution_first_and_last_in_every_format(river):
@@ -178,8 +178,8 @@ def test_each_figure_is_a_non_trivial_png(river):
     import matplotlib.image as mpimg
 
     names = sorted(p.name for p in (out / "figures").glob("*.png"))
-    assert names == ["cash_flow_fan.png", "chance_of_use.png", "decision_maps.png", "fan.png",
-                     "value_bridge.png"]
+    assert names == ["cash_flow_fan.png", "chance_of_use.png", "convergence.png",
+                     "decision_maps.png", "fan.png", "value_bridge.png"]
     for n in names:
         img = mpimg.imread(out / "figures" / n)
         assert img.shape[0] > 150 and img.shape[1] > 300
@@ -270,3 +270,23 @@ def test_cash_flow_fan_matches_the_lognormal_quantiles(tmp_path):
     assert (a.cash_flow_fan[5][ok] < 0).any()     # the band crosses zero: a case to read off
     write_report(a, tmp_path / "rep", dpi=72)
     assert (tmp_path / "rep" / "figures" / "cash_flow_fan.png").stat().st_size > 2000
+
+
+def test_convergence_ends_on_the_result_itself(tmp_path, monkeypatch):
+    f = tmp_path / "p.yaml"
+    f.write_text(ONE_DRIVER.replace("paths: 2000", "paths: 1600"))
+    a = realopt.appraise(load_project(f), progress=False)
+    pts = sim_report.convergence(a)
+    # paths/16 = 100 and paths/4 = 400, seeded as the file; the last point is the result's
+    assert [p for p, _, _ in pts] == [100, 400, 1600]
+    assert pts[-1][1] == a.expanded_npv and pts[-1][2] == a.standard_error["expanded_npv"]
+    assert all(e > 0 for _, _, e in pts)
+    again = realopt.appraise(load_project(f, {"simulation.paths": 400}), progress=False)
+    assert pts[1][1] == again.expanded_npv            # the copy is the file with paths moved
+    drawn = []
+    real = sim_report.fig_convergence
+    monkeypatch.setattr(sim_report, "fig_convergence", lambda p, fm: drawn.append(p) or real(p, fm))
+    write_report(a, tmp_path / "rep", dpi=72)
+    assert drawn == [pts]
+    assert (tmp_path / "rep" / "figures" / "convergence.png").stat().st_size > 2000
+    assert sim_report.NOT_DRAWN_TORNADO in (tmp_path / "rep" / "report.md").read_text()

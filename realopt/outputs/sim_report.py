@@ -1,8 +1,9 @@
 """The report of a simulation appraisal (``valuation: simulation``), written into a folder.
 
 Called by :func:`realopt.outputs.report.write_report` (which owns the atomic temp-folder +
-rename) with a :class:`realopt.simulation.result.SimulationAppraisal`. Nothing is re-simulated:
-every figure and table is drawn from the one result object. Money is in the project's currency
+rename) with a :class:`realopt.simulation.result.SimulationAppraisal`. Every figure and table is
+drawn from the one result object, except the convergence figure: it re-appraises copies of the
+file at paths/16 and paths/4 (same seed, via the sensitivity copier) beside the result itself. Money is in the project's currency
 and unit, valued today (risk-neutral on the drivers); years from today; driver values in the
 units the project file gives them (the file does not name the units). Every number shown is a
 field of the result, formatted by :class:`realopt.outputs.tables.Fmt`; numbered HTML cells carry
@@ -25,20 +26,73 @@ from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
              "results yet.")
+NOT_DRAWN_TORNADO = "The sensitivity tornado is not drawn for simulation results yet."
+CONVERGENCE_FRACTIONS = (16, 4)     # re-appraise at paths/16 and paths/4 beside the result
 FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan",
-           "cash_flow_fan")
+           "cash_flow_fan", "convergence")
 TITLES = {"value_bridge": "Value bridge (error bars: one standard error)",
           "decision_maps": "Decision maps in the plane of two drivers",
           "thresholds": "Exercise thresholds in the driver's units",
           "chance_of_use": "Chance of use",
           "fan": "Fan of the drivers (real-world paths)",
-          "cash_flow_fan": "Fan of the base cash flow per year (real-world paths)"}
+          "cash_flow_fan": "Fan of the base cash flow per year (real-world paths)",
+          "convergence": "Expanded NPV against paths (error bars: one standard error)"}
 CAPTIONS = {"cash_flow_fan": (
     "Percentiles 5, 25, 50, 75 and 95 of the yearly cash flow of the project as given (no "
     "right used, before tax) over the real-world valuing paths. Where a band lies below the "
     "zero line, at least that share of paths has a negative margin that year: below zero at "
     "the 5th percentile means more than one year in twenty loses money, at the median more "
-    "than half.")}
+    "than half."),
+    "convergence": (
+    "The expanded NPV re-appraised at a sixteenth and a quarter of the file's paths (same "
+    "seed) beside the result itself (the rightmost point), each with one standard error. The "
+    "fitted exercise policy is one feasible policy, so each value is low-biased: it should "
+    "settle as paths grow, and a rise beyond the error bars means more paths would still add "
+    "value.")}
+
+
+def not_drawn(pngs) -> str:
+    """The one-line note on the figures a simulation report leaves out."""
+    return NOT_DRAWN_TORNADO if "convergence" in pngs else NOT_DRAWN
+
+
+def convergence(a) -> list | None:
+    """[(paths, expanded NPV, standard error)] at paths/16, paths/4 and the result's own paths
+    (the last point is the result's, bit for bit); None when the file cannot be copied or
+    fewer than two points can be appraised. Points below the loader's fewest paths are left
+    out."""
+    from ..errors import RealoptError
+    from ..simulation.result import appraise
+    from .sensitivity import Copier
+
+    n = a.simulation.paths
+    cp = Copier(a.project)
+    if cp.route is None:
+        return None
+    pts = []
+    for d in CONVERGENCE_FRACTIONS:
+        m = n // d
+        if m < 2:
+            continue
+        try:
+            b = appraise(cp({"simulation.paths": m}), progress=False)
+        except RealoptError:
+            continue
+        pts.append((b.simulation.paths, b.expanded_npv, b.standard_error["expanded_npv"]))
+    pts.append((n, a.expanded_npv, a.standard_error["expanded_npv"]))
+    return pts if len(pts) >= 2 else None
+
+
+def fig_convergence(pts, f: Fmt):
+    n, v, e = (np.array(c, dtype=float) for c in zip(*pts))
+    fig = _fig(2.6)
+    ax = fig.add_subplot(1, 1, 1)
+    ax.errorbar(n, v, yerr=e, fmt="o-", color="#4a6fa5", capsize=3)
+    ax.set_xscale("log")
+    ax.set_xlabel("paths", fontsize=7)
+    ax.set_ylabel(f"expanded NPV ({f.unit_label}, today)", fontsize=7)
+    ax.tick_params(which="both", labelsize=6)
+    return fig
 
 
 # ------------------------------------------------------------------------ tables
@@ -267,7 +321,9 @@ def draw(a, f: Fmt, dpi: int) -> dict:
     makers = {"value_bridge": lambda: fig_bridge(a, f), "decision_maps": lambda: fig_maps(a),
               "thresholds": lambda: fig_thresholds(a),
               "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a),
-              "cash_flow_fan": lambda: fig_cash_flow_fan(a)}
+              "cash_flow_fan": lambda: fig_cash_flow_fan(a),
+              "convergence": lambda: fig_convergence(conv, f)}
+    conv = convergence(a)
     out = {}
     for slug in FIGURES:
         if slug == "decision_maps" and not any(
@@ -281,6 +337,8 @@ def draw(a, f: Fmt, dpi: int) -> dict:
             continue
         if slug == "cash_flow_fan" and not np.isfinite(
                 np.asarray(a.cash_flow_fan.get(50, [np.nan]))).any():
+            continue
+        if slug == "convergence" and conv is None:
             continue
         fig = makers[slug]()
         buf = io.BytesIO()
@@ -363,7 +421,7 @@ def render_html(a, f: Fmt, pngs) -> str:
         h.append(f"<h3>{_e(TITLES[slug])}</h3>{_img(png, TITLES[slug])}")
         if slug in CAPTIONS:
             h.append(f"<p>{_e(CAPTIONS[slug])}</p>")
-    h.append(f"<p>{_e(NOT_DRAWN)}</p><p>{_e(sim_sentence(a))}</p>")
+    h.append(f"<p>{_e(not_drawn(pngs))}</p><p>{_e(sim_sentence(a))}</p>")
     if a.warnings:
         h.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{_e(w)}</li>" for w in a.warnings)
                  + "</ul>")
@@ -392,7 +450,7 @@ def render_markdown(a, f: Fmt, pngs) -> str:
           "## Figures", ""]
     for s in pngs:
         m += [f"![{TITLES[s]}](figures/{s}.png)\n"] + ([CAPTIONS[s], ""] if s in CAPTIONS else [])
-    m += [NOT_DRAWN, "", sim_sentence(a), ""]
+    m += [not_drawn(pngs), "", sim_sentence(a), ""]
     if a.warnings:
         m += ["## Warnings", ""] + [f"- {w}" for w in a.warnings] + [""]
     m += [f"> {CAUTION_SIMULATION}", ""]
@@ -421,7 +479,7 @@ def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
     for r in a.rights:
         lines += textwrap.wrap(f"- {r.rule}", 95)
     lines += [""] + textwrap.wrap(dcf_sentence(a, f), 95) + [""]
-    lines += textwrap.wrap(NOT_DRAWN, 95) + textwrap.wrap(sim_sentence(a), 95)
+    lines += textwrap.wrap(not_drawn(pngs), 95) + textwrap.wrap(sim_sentence(a), 95)
     with PdfPages(path) as pdf:
         per_page = 72
         for start in range(0, len(lines), per_page):          # text runs on, never cut
