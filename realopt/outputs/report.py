@@ -198,21 +198,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> 
         for chart in b.charts + b.extra:
             (tmp / "figures" / f"{chart.slug}.png").write_bytes(b.png(chart.slug))
     tables = csv_tables(a, s, f)
-    (tmp / "tables").mkdir()
-    for stem, df in tables.items():
-        df.to_csv(tmp / "tables" / f"{stem}.csv", index=False)
-    if xlsx is None:
-        try:
-            import openpyxl  # noqa: F401
-            xlsx = True
-        except ImportError:
-            xlsx = False
-    if xlsx:
-        import pandas as pd
-
-        with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
-            for stem, df in tables.items():
-                df.to_excel(xw, sheet_name=stem[:31], index=False)
+    write_tables(tmp, tables, xlsx)
     from ..jsontext import to_json
 
     (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
@@ -229,6 +215,26 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> 
 _JOB = None             # (appraisal, moves, dpi) for forked workers (see _Drawer)
 _CHARTS = None          # the charts being drawn, for forked workers (see render_all)
 
+
+
+def write_tables(tmp: Path, tables: dict, xlsx: bool | None) -> None:
+    """Every table as tables/<stem>.csv, and all of them in tables.xlsx when ``xlsx`` (None:
+    when openpyxl is installed). Shared by the lattice and the simulation reports."""
+    (tmp / "tables").mkdir()
+    for stem, df in tables.items():
+        df.to_csv(tmp / "tables" / f"{stem}.csv", index=False)
+    if xlsx is None:
+        try:
+            import openpyxl  # noqa: F401
+            xlsx = True
+        except ImportError:
+            xlsx = False
+    if xlsx:
+        import pandas as pd
+
+        with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
+            for stem, df in tables.items():
+                df.to_excel(xw, sheet_name=stem[:31], index=False)
 
 def _render_one(k):
     from . import figures

@@ -511,19 +511,9 @@ def write_all(a, tmp: Path, dpi: int, xlsx, source, marker: str) -> None:
         (tmp / "figures" / f"{slug}.png").write_bytes(png)
     pages = write_pdf(a, f, pngs, tmp / "report.pdf")
     tables = csv_tables(a)
-    (tmp / "tables").mkdir()
-    for stem, df in tables.items():
-        df.to_csv(tmp / "tables" / f"{stem}.csv", index=False)
-    if xlsx is None:
-        try:
-            import openpyxl  # noqa: F401
-            xlsx = True
-        except ImportError:
-            xlsx = False
-    if xlsx:
-        with pd.ExcelWriter(tmp / "tables.xlsx", engine="openpyxl") as xw:
-            for stem, df in tables.items():
-                df.to_excel(xw, sheet_name=stem[:31], index=False)
+    from .report import write_tables
+
+    write_tables(tmp, tables, xlsx)
     (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
     (tmp / "report.html").write_text(render_html(a, f, pngs), encoding="utf-8")
     (tmp / "report.md").write_text(render_markdown(a, f, pngs), encoding="utf-8")
