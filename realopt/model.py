@@ -285,6 +285,7 @@ class SimulationSpec:
     antithetic: bool = True
     upper_bound_paths: int = 0
     upper_bound_inner: int = 0
+    upper_bound_nested: bool = True
     map_drivers: tuple[str, ...] = ()
 
 

@@ -203,11 +203,15 @@ class Problem:
             e[n] = s.at(t)
         return e
 
-    def formula_values(self, k: int, x: np.ndarray) -> dict:
+    def formula_values(self, k: int, x: np.ndarray, keys=None) -> dict:
+        """{formula key: (n,) yearly flow after tax} at date k on driver values x (d, n);
+        ``keys``: only those formulas."""
         e = self.env(k, x)
         n = x.shape[-1]
         out = {}
         for key, f in self.formulas.items():
+            if keys is not None and key not in keys:
+                continue
             v = np.broadcast_to(np.asarray(f.evaluate(e), dtype=float), (n,))
             if self.tax:
                 v = v - self.tax * np.maximum(v, 0.0)
@@ -304,32 +308,66 @@ def martingale_increments(prob: Problem, dyn, x: np.ndarray) -> dict | None:
     payoff at exercise. None when no formula qualifies or the work exceeds the budget."""
     if prob.tax or not prob.uncertain:
         return None
-    names = set(prob.names)
-    keys = [k for k, f in prob.formulas.items() if f.is_affine(names) and f.names & names]
-    if not keys:
+    cf = ConditionalFlows(prob, dyn)
+    if not cf.keys:
         return None
     T, n, d = prob.T, x.shape[-1], len(prob.names)
-    flow = [(s, s - 1 if prob.timing == "spread" else s) for s in range(1, T)
-            if prob.weight[s] > 0]
-    work = T * len(flow) * max(1, d) * n / 2
+    work = T * len(cf.flow) * max(1, d) * n / 2
     if work > MARTINGALE_BUDGET:
         return None
-    from .paths import _variance
-
-    # affine coefficients at each env date: c0 and c_i (schedules at that date)
-    probe = np.concatenate([np.zeros((d, 1)), np.eye(d)], axis=1)
-    coef = {}
-    for s_, e in flow:
-        vals = prob.formula_values(e, probe)
-        coef[e] = {key: (vals[key][0], vals[key][1:] - vals[key][0]) for key in keys}
-    means = np.array([dyn.mean(t) for t in prob.times])           # (T, d)
+    keys = cf.keys
     out = {key: np.zeros((T, n)) for key in keys}
     prev = None
     for k in range(T):
-        xk = x[k]
+        vbar = cf.value(k, x[k])
+        if k > 0:
+            g = prob.formula_values(flow_env(prob, k), x[flow_env(prob, k)]) \
+                if prob.weight[k] > 0 else None
+            for key in keys:
+                paid = prob.disc[k] * prob.weight[k] * g[key] if g is not None else 0.0
+                out[key][k] = paid + vbar[key] - prev[key]
+        prev = vbar
+    return out
+
+
+class ConditionalFlows:
+    """Vbar_f(k, x) = E*_k[sum over dates after k of the discounted flow of formula f], in
+    closed form, for each formula f affine in the simulated drivers (untaxed) that depends on
+    them (``keys``; empty otherwise). The flow paid at date e' uses the drivers at its
+    environment date e (e' - 1 with ``spread``); E*_k[X_e] = exp(m(t_e) + (ln X_k - m(t_k))
+    e^{-speed h} + v(h)/2)."""
+
+    def __init__(self, prob: Problem, dyn):
+        self.prob, self.dyn = prob, dyn
+        self.keys = []
+        if prob.tax or not prob.uncertain:
+            return
+        names = set(prob.names)
+        self.keys = [k for k, f in prob.formulas.items() if f.is_affine(names) and f.names & names]
+        if not self.keys:
+            return
+        d = len(prob.names)
+        T = prob.T
+        self.flow = [(s, s - 1 if prob.timing == "spread" else s) for s in range(1, T)
+                     if prob.weight[s] > 0]
+        # affine coefficients at each env date: c0 and c_i (schedules at that date)
+        probe = np.concatenate([np.zeros((d, 1)), np.eye(d)], axis=1)
+        self.coef = {}
+        for s_, e in self.flow:
+            vals = prob.formula_values(e, probe)
+            self.coef[e] = {key: (vals[key][0], vals[key][1:] - vals[key][0])
+                            for key in self.keys}
+        self.means = np.array([dyn.mean(t) for t in prob.times])           # (T, d)
+
+    def value(self, k: int, xk: np.ndarray) -> dict:
+        """{formula key: (n,) Vbar at date k} on driver values ``xk`` (d, n) at date k."""
+        from .paths import _variance
+
+        prob, dyn, means = self.prob, self.dyn, self.means
+        d, n = xk.shape[0], xk.shape[-1]
         logx = np.log(xk) if d else None
-        vbar = {key: np.zeros(n) for key in keys}
-        for s_, e in flow:
+        vbar = {key: np.zeros(n) for key in self.keys}
+        for s_, e in self.flow:
             if s_ <= k:
                 continue
             w = prob.disc[s_] * prob.weight[s_]
@@ -341,21 +379,14 @@ def martingale_increments(prob: Problem, dyn, x: np.ndarray) -> dict | None:
                 v = np.array([_variance(sg, kp, h) for sg, kp in zip(dyn.vol, dyn.speed)])
                 ex = np.exp(means[e][:, None] + (logx - means[k][:, None]) * b[:, None]
                             + 0.5 * v[:, None])
-            for key in keys:
-                c0, ci = coef[e][key]
+            for key in self.keys:
+                c0, ci = self.coef[e][key]
                 acc = vbar[key]
                 acc += w * c0
                 for i in range(d):
                     if ci[i] != 0.0:
                         acc += (w * ci[i]) * ex[i]
-        if k > 0:
-            g = prob.formula_values(flow_env(prob, k), x[flow_env(prob, k)]) \
-                if prob.weight[k] > 0 else None
-            for key in keys:
-                paid = prob.disc[k] * prob.weight[k] * g[key] if g is not None else 0.0
-                out[key][k] = paid + vbar[key] - prev[key]
-        prev = vbar
-    return out
+        return vbar
 
 
 def flow_env(prob: Problem, k: int) -> int:

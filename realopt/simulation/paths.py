@@ -33,7 +33,7 @@ from ..drivers import _cholesky_psd, correlation_matrix
 from ..errors import ValuationError
 from ..model import DriverModel
 
-STREAMS = {"fit": 1, "value": 2, "upper": 3, "inner": 4}
+STREAMS = {"fit": 1, "value": 2, "upper": 3, "inner": 4, "control": 5}
 
 
 @dataclass(frozen=True)

@@ -21,7 +21,7 @@ from ..errors import ValuationError
 from ..model import Project, Switch
 from ..rights import (base_description, build_state_graph, prepared_rights,
                       requirement_closure, structure_warnings, threshold_side, usable_subset)
-from . import lsm
+from . import bound, lsm
 from .paths import change_measure, dynamics, simulate
 
 MAX_RIGHTS = 10
@@ -480,7 +480,8 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         if key not in cache:
             graph = build_state_graph(usable)
             full = key == full_key
-            pol = lsm.fit(prob, graph, x_fit, stats, open_by, all_states=full and ub_asked,
+            pol = lsm.fit(prob, graph, x_fit, stats, open_by,
+                          all_states=full and ub_asked and not spec.upper_bound_nested,
                           progress=prog)
             res = lsm.run(prob, pol, x_val, record=full, progress=prog, mart=mart)
             v = res.values - (investment_pv if graph.states[graph.initial].invested else 0.0)
@@ -547,21 +548,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
 
     upper = None
     if spec.upper_bound_paths:
-        if prob.uncertain:
-            m = spec.upper_bound_paths + (spec.upper_bound_paths % 2 if anti else 0)
-            outer = simulate(dyn, prob.times, m, spec.seed, "upper", anti)
-            z = lsm.upper_bound(prob, pol, dyn, outer, spec.upper_bound_inner, spec.seed,
-                                progress=prog)
-            invested0 = pol.graph.states[pol.graph.initial].invested
-            z = z - (investment_pv if invested0 else 0.0)
-            ub, ub_se = _mean_se(z, anti)
-        else:
-            ub, ub_se = expanded, 0.0
-        upper = {"value": ub, "standard_error": ub_se,
-                 "paths": spec.upper_bound_paths, "inner": spec.upper_bound_inner,
-                 "method": "dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) "
-                           "with the martingale of the fitted value function, one-step inner "
-                           "draws"}
+        upper = _upper_bound(prob, pol, dyn, spec, anti, investment_pv, expanded, flex, prog)
     if prog:
         prog.close()
 
@@ -595,6 +582,34 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         fan_years=fan_years, fan=fan, cash_flow_fan=cf_fan,
         base=base_description(rights, "the cash flows of the drivers as given"),
         headline_warnings=tuple(headline), cash_flow_value=plain_value)
+
+
+def _upper_bound(prob, pol, dyn, spec, anti, investment_pv, expanded, flex, prog) -> dict:
+    """The dual upper bound on the expanded NPV (``simulation.upper_bound``): nested
+    simulation of the fitted policy (Andersen & Broadie 2004, realopt.simulation.bound) or,
+    with ``nested: false``, the martingale of the fitted value function (lsm.upper_bound)."""
+    nested = spec.upper_bound_nested
+    inner = spec.upper_bound_inner
+    if prob.uncertain:
+        m = spec.upper_bound_paths + (spec.upper_bound_paths % 2 if anti else 0)
+        outer = simulate(dyn, prob.times, m, spec.seed, "upper", anti)
+    else:                           # deterministic drivers: one path, one inner pair, exact
+        m, inner, anti = 1, 2, False
+        outer = simulate(dyn, prob.times, 1, spec.seed, "upper", False)
+    if nested:
+        z = bound.nested_upper_bound(prob, pol, dyn, outer, inner, spec.seed, progress=prog)
+        method = ("Andersen & Broadie (2004) duality: martingale of the fitted policy's own "
+                  "value, estimated by nested simulation")
+    else:
+        z = lsm.upper_bound(prob, pol, dyn, outer, inner, spec.seed, progress=prog)
+        method = ("dual bound with the martingale of the fitted value function (Haugh & Kogan "
+                  "2004), one-step inner draws")
+    invested0 = pol.graph.states[pol.graph.initial].invested
+    z = z - (investment_pv if invested0 else 0.0)
+    ub, ub_se = _mean_se(z, anti)
+    return {"value": ub, "standard_error": ub_se, "paths": spec.upper_bound_paths,
+            "inner": spec.upper_bound_inner, "nested": nested, "method": method,
+            "gap": ub - expanded, "gap_share": bound.gap_share(ub, expanded, flex)}
 
 
 def lsm_min_paths(prob: lsm.Problem) -> int:
