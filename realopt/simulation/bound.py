@@ -117,6 +117,37 @@ class Layout:
         self.finished = (dates >= last_open[None, :]) & ~stochastic[None, :]
         self.finished[:, self.dead] = True
         self.spawn = [[s for s in self.reach[k] if not self.finished[k, s]] for k in range(T)]
+        # C_k(s) enters the bound on every path where s can move to a live state at k or be
+        # moved to at k; a move that ends the project only where it can be worth taking
+        self.always = []
+        self.sales = []
+        for k in range(T):
+            ids = [e for e in open_edges.get(k, ()) if graph.edges[e].source in self.reach[k]]
+            alw = {graph.edges[e].target for e in ids if not self.dead[graph.edges[e].target]}
+            alw |= {graph.edges[e].source for e in ids if not self.dead[graph.edges[e].target]}
+            self.always.append(alw)
+            sales = {}
+            for e in ids:
+                if self.dead[graph.edges[e].target]:
+                    sales.setdefault(graph.edges[e].source, []).append(graph.edges[e])
+            self.sales.append(sales)
+
+    def needed(self, k: int, s: int, xk: np.ndarray, dest: np.ndarray, stay: np.ndarray):
+        """Outer paths (indices) on which C_k(s) must be estimated. Elsewhere the policy
+        carries s on at k and the pathwise maximum cannot move from s at k, so C_k(s) enters
+        the increments into and out of date k with opposite signs and cancels: only the
+        estimates at dates where a decision can differ from carrying on are needed (as
+        Andersen & Broadie need the value process only at exercise dates)."""
+        m = xk.shape[-1]
+        if k == 0 or s in self.always[k]:
+            return np.arange(m)
+        need = dest != s
+        for e in self.sales[k].get(s, ()):
+            money = np.broadcast_to(self.prob.money(e, k, xk), (m,)) * self.prob.disc[k]
+            if np.isnan(stay[0]):
+                return np.arange(m)
+            need |= money >= stay
+        return np.flatnonzero(need)
 
     def steps_per_outer(self, inner: int) -> tuple[int, int]:
         """(inner path-steps, inner paths alive at most) per outer path, before any inner path
@@ -176,6 +207,7 @@ class ValueControl:
             cov = dyn.step_cov(h)[np.ix_(cols, cols)]
             self.gain[j] = np.exp(0.5 * np.einsum("ti,ij,tj->t", e, cov, e))
         self.beta = np.zeros((T, S, self.terms))
+        self.fitted = [[] for _ in range(T)]      # states with a polynomial at each date
         x = simulate(dyn, prob.times, paths + paths % 2, seed, "control", True)
         self._fit(prob, pol, lay, x)
 
@@ -197,11 +229,23 @@ class ValueControl:
             * self.decay[j][:, None]
         return np.exp(mu - self.logc[j][:, None])
 
-    def increment(self, j: int, y_prev: np.ndarray, y_now: np.ndarray, state: np.ndarray):
-        """(n,) P_js(X_j) - E_{j-1}[P_js(X_j)] for the state held by each path."""
-        diff = self._rows(self._u(j, y_now)) - self.gain[j][:, None] * self._rows(
-            self._w(j, y_prev))
-        return np.einsum("nt,tn->n", self.beta[j][state], diff)
+    def expected_rows(self, j: int, y_prev: np.ndarray) -> np.ndarray:
+        """(terms, n) E_{j-1}[monomials of X_j / E[X_j]] from the logs at date j - 1."""
+        return self.gain[j][:, None] * self._rows(self._w(j, y_prev))
+
+    def increment(self, j: int, x_now: np.ndarray, erows: np.ndarray, state: np.ndarray):
+        """(n,) P_js(X_j) - E_{j-1}[P_js(X_j)] for the state s held by each path over
+        (j-1, j]: x_now the drivers at j, erows from :meth:`expected_rows`."""
+        u = x_now[self.cols] * np.exp(-self.logc[j])[:, None]
+        diff = self._rows(u)
+        diff -= erows
+        out = np.zeros(state.shape[0])
+        for s in self.fitted[j]:                 # one polynomial per state: a loop over states
+            v = lsm.predict(diff, self.beta[j, s])
+            if len(self.fitted[j]) == 1:
+                return v * (state == s)
+            np.copyto(out, v, where=state == s)
+        return out
 
     def _fit(self, prob, pol, lay: Layout, x: np.ndarray) -> None:
         """Backward along the control paths: R_j(s) = what having held s over (j-1, j] brings
@@ -247,6 +291,7 @@ class ValueControl:
                 else:
                     r += cont[s]
                 self.beta[j, s] = lsm.least_squares(rows, r[None, :])[:, 0]
+                self.fitted[j].append(s)
                 nxt[s] = r
             cont = nxt
 
@@ -270,7 +315,6 @@ def nested_upper_bound(prob: lsm.Problem, pol, dyn, outer: np.ndarray, inner: in
 
 def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progress):
     """Dual values of one chunk of outer paths X (T, d, m)."""
-    graph = pol.graph
     S, T, m = lay.S, lay.T, X.shape[-1]
     d = X.shape[1]
     pairs = max(1, inner // 2)
@@ -278,6 +322,9 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
     chat = np.zeros((T, S, m))            # C_k(s) on each outer path
     sums = np.zeros(T * S * m)            # sums of the inner values by (date, state, outer)
     means = np.array([dyn.mean(t) for t in prob.times]) if d else np.zeros((T, 0))
+    dest = np.repeat(np.arange(S)[None, :, None], T, axis=0).repeat(m, axis=2)   # f_k(s)
+    cash = np.zeros((T, S, m))                                                 # money_k(s)
+    stay = np.full((T, S, m), np.nan)     # value of never moving again (known flows only)
     chol: dict = {}
 
     def vstart(k, xk, s):
@@ -290,102 +337,105 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
                     v += lay.vmult[key][s] * vb[key]
         return v
 
-    # inner paths alive: logs y (d, 2, P), state (2, P), value (2, P), group (P,)
-    y = np.zeros((d, 2, 0))
-    cur = np.zeros((2, 0), dtype=np.int64)
-    val = np.zeros((2, 0))
-    grp = np.zeros(0, dtype=np.int64)
-    pid = np.zeros(0, dtype=np.int64)      # (outer path, pair): whose normals a pair takes
+    # the inner paths alive, one entry each: logs of the drivers y (d, N), state, value so far,
+    # group (start date, start state, outer path), pair (outer path, pair index) whose normals
+    # it takes, and the sign it takes them with (antithetic pairs)
+    live = {"y": np.zeros((d, 0)), "cur": np.zeros(0, dtype=np.int64), "val": np.zeros(0),
+            "grp": np.zeros(0, dtype=np.int64), "pid": np.zeros(0, dtype=np.int64),
+            "sgn": np.zeros(0)}
 
-    def start(k):
-        """Exact C_k for states that cannot move; new inner paths for the others."""
-        nonlocal y, cur, val, grp, pid
+    def start(k) -> dict | None:
+        """Exact C_k for states that cannot move; new inner paths for the others, on the outer
+        paths where C_k enters the bound (see :meth:`Layout.needed`)."""
         xk = X[k]
+        parts = []
         for s in lay.reach[k]:
+            v = vstart(k, xk, s)
+            if lay.known[s]:
+                stay[k, s] = v + lay.tail[k, s]
             if lay.finished[k, s]:
-                chat[k, s] = vstart(k, xk, s) + lay.tail[k, s]
-        new = lay.spawn[k]
-        if not new:
-            return
-        ly = np.log(xk) if d else np.zeros((0, m))
-        ys = np.repeat(ly, pairs, axis=1)                       # (d, m * pairs)
-        y_new = np.concatenate([ys] * len(new), axis=1)
-        y = np.concatenate([y, np.repeat(y_new[:, None, :], 2, axis=1)], axis=2)
-        c_new = np.repeat(np.array(new, dtype=np.int64), m * pairs)
-        cur = np.concatenate([cur, np.repeat(c_new[None, :], 2, axis=0)], axis=1)
-        v_new = np.concatenate([np.repeat(vstart(k, xk, s), pairs) for s in new])
-        val = np.concatenate([val, np.repeat(v_new[None, :], 2, axis=0)], axis=1)
-        outer_i = np.repeat(np.arange(m), pairs)
-        g_new = np.concatenate([(k * S + s) * m + outer_i for s in new])
-        grp = np.concatenate([grp, g_new])
-        pid = np.concatenate([pid, np.tile(np.arange(m * pairs), len(new))])
+                chat[k, s] = v + lay.tail[k, s]
+                continue
+            idx = lay.needed(k, s, xk, dest[k, s], stay[k, s])
+            if idx.size:
+                parts.append((s, idx, v[idx]))
+        if not parts:
+            return None
+        sel = np.concatenate([np.repeat(idx, pairs) for _, idx, _ in parts])
+        pp = np.tile(np.arange(pairs), sel.size // pairs)
+        ly = np.log(xk[:, sel]) if d else np.zeros((0, sel.size))
+        c_new = np.concatenate([np.full(idx.size * pairs, s, dtype=np.int64)
+                                for s, idx, _ in parts])
+        v_new = np.concatenate([np.repeat(v, pairs) for _, _, v in parts])
+        g_new = np.concatenate([(k * S + s) * m + np.repeat(idx, pairs) for s, idx, _ in parts])
+        two = sel.size
+        return {"y": np.concatenate([ly, ly], axis=1), "cur": np.concatenate([c_new, c_new]),
+                "val": np.concatenate([v_new, v_new]), "grp": np.concatenate([g_new, g_new]),
+                "pid": np.tile(sel * pairs + pp, 2),
+                "sgn": np.concatenate([np.ones(two), -np.ones(two)])}
 
-    def flush(done):
-        sums[:] += np.bincount(grp[done], weights=val[0, done] + val[1, done],
-                               minlength=sums.size)
+    def merge(keep, new):
+        for name in live:
+            old = live[name][..., keep] if keep is not None else live[name]
+            live[name] = old if new is None else np.concatenate([old, new[name]], axis=-1)
 
-    dest = np.repeat(np.arange(S)[None, :, None], T, axis=0).repeat(m, axis=2)   # f_k(s)
-    cash = np.zeros((T, S, m))                                                 # money_k(s)
-    start(0)
+    merge(None, start(0))
     for j in range(1, T):
         if progress:
             progress()
-        P = grp.size
-        if P:
+        keep = None
+        N = live["grp"].size
+        if N:
+            y, cur, val = live["y"], live["cur"], live["val"]
+            x_prev = np.exp(y) if (lay.smult and prob.timing == "spread") else None
+            erows = None
             if d:
                 h = float(prob.times[j] - prob.times[j - 1])
                 key = round(h, 12)
                 if key not in chol:
                     chol[key] = (lsm_chol(dyn, h), np.exp(-dyn.speed * h))
                 L, decay = chol[key]
-                y_prev = np.exp(y).reshape(d, 2 * P) if lay.smult and \
-                    prob.timing == "spread" else None
-                # common random numbers: every inner pair of an outer path takes the same
-                # normals at a date, whatever its start date and state, so the estimates
-                # that the pathwise maximum compares err together
-                z = gen.standard_normal((d, m * pairs))[:, pid]
-                y_old = y.reshape(d, 2 * P).copy() if vc.active else None
-                y -= means[j - 1][:, None, None]
-                y *= decay[:, None, None]
-                y += means[j][:, None, None]
+                if vc.active:
+                    erows = vc.expected_rows(j, y)
+                # common random numbers: every inner path of an outer path takes the same
+                # normals at a date (its pair's, with its sign), whatever its start date and
+                # state, so the estimates that the pathwise maximum compares err together
+                z = gen.standard_normal((d, m * pairs))[:, live["pid"]] * live["sgn"]
+                y -= means[j - 1][:, None]
+                y *= decay[:, None]
+                y += means[j][:, None]
                 for a in range(d):                  # y += L z, a fixed order of sums
                     for b in range(a + 1):
                         if L[a, b] != 0.0:
-                            step = L[a, b] * z[b]
-                            y[a, 0] += step
-                            y[a, 1] -= step         # the antithetic path takes -z
-                x = np.exp(y).reshape(d, 2 * P)
+                            y[a] += L[a, b] * z[b]
+                x = np.exp(y)
             else:
-                x = y_prev = np.zeros((0, 2 * P))
-            cf_ = cur.reshape(2 * P)
-            vf = val.reshape(2 * P)
-            vf += lay.cflow[j][cf_]
-            if d and vc.active:
-                vf -= vc.increment(j, y_old, y.reshape(d, 2 * P), cf_)
+                x = np.zeros((0, N))
+            val += lay.cflow[j][cur]
+            if erows is not None:
+                val -= vc.increment(j, x, erows, cur)
             if lay.smult and prob.weight[j] > 0:
-                xe = y_prev if prob.timing == "spread" else x
+                xe = x_prev if prob.timing == "spread" else x
                 fv = prob.formula_values(lsm.flow_env(prob, j), xe, keys=set(lay.smult))
                 w = prob.disc[j] * prob.weight[j]
                 for key, mult in lay.smult.items():
-                    vf += w * mult[cf_] * fv[key]
+                    val += w * mult[cur] * fv[key]
             if j in pol.open_edges:
-                new, money, _ = lsm.decide(prob, pol, j, x, cf_)
-                vf += prob.disc[j] * money
-                sw = np.flatnonzero(new != cf_)
+                new, money, _ = lsm.decide(prob, pol, j, x, cur)
+                val += prob.disc[j] * money
+                sw = np.flatnonzero(new != cur)
                 if sw.size and cf is not None and cf.keys:
                     vb = cf.value(j, x[:, sw])
                     for key in cf.keys:
                         vm = lay.vmult[key]
-                        vf[sw] += (vm[new[sw]] - vm[cf_[sw]]) * vb[key]
-                cur = new.reshape(2, P)
+                        val[sw] += (vm[new[sw]] - vm[cur[sw]]) * vb[key]
+                cur = live["cur"] = new
             fin = lay.finished[j][cur]
-            done = np.flatnonzero(fin[0] & fin[1])
-            if done.size:
-                val[:, done] += lay.tail[j][cur[:, done]]
-                flush(done)
-                keep = np.flatnonzero(~(fin[0] & fin[1]))
-                y, cur, val = y[:, :, keep], cur[:, keep], val[:, keep]
-                grp, pid = grp[keep], pid[keep]
+            if fin.any():
+                done = np.flatnonzero(fin)
+                sums += np.bincount(live["grp"][done], weights=val[done] + lay.tail[j][cur[done]],
+                                    minlength=sums.size)
+                keep = np.flatnonzero(~fin)
         # the policy's move on the outer paths from each state held since the previous date
         held = lay.reach[j - 1]
         if j in pol.open_edges and held:
@@ -396,23 +446,18 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
                 dest[j, s] = new[i * m:(i + 1) * m]
                 cash[j, s] = prob.disc[j] * money[i * m:(i + 1) * m]
         if j < T - 1:
-            start(j)
+            merge(keep, start(j))
         else:
+            merge(keep, None)
             for s in lay.reach[j]:
                 chat[j, s] = lay.tail[j, s]          # the terminal value, known
-    if grp.size:
-        val += lay.terminal[cur]
-        flush(np.arange(grp.size))
+    if live["grp"].size:
+        sums += np.bincount(live["grp"], weights=live["val"] + lay.terminal[live["cur"]],
+                            minlength=sums.size)
     est = sums.reshape(T, S, m) / (2 * pairs)
     for k in range(T - 1):
         for s in lay.spawn[k]:
             chat[k, s] = est[k, s]
-    # the value of never moving again from each state (a lower bound on carrying on)
-    stay = np.full((T, S, m), np.nan)
-    for k in range(T):
-        for s in lay.reach[k]:
-            if lay.known[s]:
-                stay[k, s] = vstart(k, X[k], s) + lay.tail[k, s]
     return _dual(prob, pol, lay, X, chat, dest, cash, stay)
 
 

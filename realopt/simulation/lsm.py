@@ -688,8 +688,8 @@ def _decide_state(prob, pol, k, xk, cur, new, money, taken, s, eids, counts=None
                 cash[sel] = m[sel]
         hit = choice >= 0
         if hit.any():
-            tgt = np.array([graph.edges[c].target for c in choice[hit]])
-            new[idx[hit]] = tgt
+            targets = np.array([e.target for e in graph.edges])
+            new[idx[hit]] = targets[choice[hit]]
             money[idx[hit]] += cash[hit]
             taken[idx[hit]] = choice[hit]
             if counts is not None:
