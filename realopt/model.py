@@ -285,7 +285,6 @@ class SimulationSpec:
     antithetic: bool = True
     upper_bound_paths: int = 0
     upper_bound_inner: int = 0
-    upper_bound_nested: bool = True
     map_drivers: tuple[str, ...] = ()
 
 

@@ -37,6 +37,7 @@ so that the inner paths alive at once stay within :data:`MEMORY` bytes.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -44,6 +45,8 @@ from . import lsm
 from .paths import generator
 
 MEMORY = 256e6            # bytes of inner paths alive at once (one chunk of outer paths)
+METHOD = ("Andersen & Broadie (2004) duality: the martingale of the fitted policy's own value, "
+          "estimated by inner paths that follow the policy")
 
 
 class Layout:
@@ -294,6 +297,52 @@ class ValueControl:
                 self.fitted[j].append(s)
                 nxt[s] = r
             cont = nxt
+
+
+SECONDS_PER_STEP = 13.5e-9   # CPU seconds per inner path-step and unit of work (calibrated on
+#                              projects/river_ccgt.yaml, tests/benchmarks/bench_simulation.py)
+
+
+@dataclass(frozen=True)
+class BoundPlan:
+    """Size of the nested bound before anything is simulated (``realopt check``, the guard)."""
+
+    path_steps: int          # inner path-steps at most (paths that end early take fewer)
+    chunk: int               # outer paths per chunk
+    chunks: int
+    memory_bytes: int
+    seconds_estimate: float
+
+
+def open_edges(graph, open_by_right: dict, T: int) -> dict:
+    """{date index: edge ids open at that date}, as :func:`lsm.fit` builds them."""
+    out = {}
+    for k in range(T):
+        ids = [i for i, e in enumerate(graph.edges) if open_by_right[e.right][k]]
+        if ids:
+            out[k] = ids
+    return out
+
+
+def plan(prob: lsm.Problem, graph, open_by_right: dict, outer: int, inner: int) -> BoundPlan:
+    """Inner path-steps, chunks, memory and CPU time of the nested bound on ``outer`` paths with
+    ``inner`` inner paths: an upper estimate (inner paths that end early, at a sale, and dates
+    where an estimate is not needed take less)."""
+    lay = Layout(prob, graph, open_edges(graph, open_by_right, prob.T),
+                 prob.state_flows(graph))
+    steps, alive = lay.steps_per_outer(inner)
+    chunk = min(outer, chunk_size(prob, lay, inner))
+    chunks = -(-outer // chunk)
+    d, S, T = max(1, len(prob.names)), lay.S, prob.T
+    terms = prob.basis.terms
+    control = CONTROL_PATHS * 8 * (T * d + 4 * S + 3 * terms)
+    memory = (chunk * alive * bytes_per_inner_path(prob) + 8 * T * d * outer
+              + 8 * 5 * T * S * chunk + control)
+    unit = 2 + d + terms + S
+    seconds = (outer * steps * unit * SECONDS_PER_STEP
+               + CONTROL_PATHS * T * S * unit * 5 * SECONDS_PER_STEP)
+    return BoundPlan(path_steps=int(outer * steps), chunk=chunk, chunks=chunks,
+                     memory_bytes=int(memory), seconds_estimate=float(seconds))
 
 
 def nested_upper_bound(prob: lsm.Problem, pol, dyn, outer: np.ndarray, inner: int, seed: int,

@@ -231,6 +231,13 @@ class SimulationAppraisal:
             ub = self.upper_bound
             out.append(row("Dual upper bound on the expanded NPV", "",
                            pm(ub["value"], ub["standard_error"])))
+            share = ub.get("gap_share")
+            out += textwrap.wrap(
+                f"The expanded NPV of the best policy lies between the two, within their "
+                f"standard errors: a gap of {num(ub['gap'])}"
+                + (f" ({100 * share:.1f}% of the flexibility value)" if share is not None else "")
+                + f"; bound by nested simulation, {ub['paths']:,} outer x {ub['inner']} inner "
+                "paths (Andersen & Broadie 2004)", width, subsequent_indent="  ")
         out.append("")
         out.append(f"Decision today: {self.decision_today}")
         rw = self.real_world_dcf
@@ -294,6 +301,8 @@ class SimPlan:
     memory_bytes: int
     seconds_estimate: float
     warnings: tuple[str, ...]
+    bound_memory_bytes: int = 0      # the dual upper bound's share of the two above
+    bound_seconds: float = 0.0
 
 
 def _paths_used(project: Project, prob: lsm.Problem) -> int:
@@ -322,24 +331,34 @@ def plan(project: Project) -> SimPlan:
     terms = prob.basis.terms
     sets = 2 * prob.T * max(d, 1) * n * 8
     work = 8 * n * (6 * S + 3 * terms + 2 * solves + 8)
-    ub = 0
     spec = project.simulation
-    if spec.upper_bound_paths:
-        ub = 8 * spec.upper_bound_paths * (prob.T * max(d, 1) + spec.upper_bound_inner
-                                           * (d + 3 * S + terms))
-    memory = int(sets + work + ub)
+    ub = _bound_plan(project, prob, graph, rights)
+    memory = int(sets + work + (ub.memory_bytes if ub else 0))
     dec = int(opened.sum())
     # CPU seconds, calibrated on tests/benchmarks/bench_simulation.py (the Bermudan put and the
     # three-driver plant on this project's 2-core machine); a loaded machine takes longer
     seconds = 0.3 + n * solves * prob.T * (S + terms) * 9.5e-9 + n * prob.T * max(d, 1) * 2e-8
-    if spec.upper_bound_paths:
-        seconds += spec.upper_bound_paths * spec.upper_bound_inner * prob.T * (
-            S + d + terms) * 30e-9
+    if ub:
+        seconds += ub.seconds_estimate
     warnings = list(project.warnings) + structure_warnings(
         graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
     return SimPlan(paths=n, dates=prob.T, decision_dates=dec, horizon=float(prob.times[-1]),
                    drivers=d, regression_terms=terms, states=S, solves=solves,
-                   memory_bytes=memory, seconds_estimate=seconds, warnings=tuple(warnings))
+                   memory_bytes=memory, seconds_estimate=seconds, warnings=tuple(warnings),
+                   bound_memory_bytes=ub.memory_bytes if ub else 0,
+                   bound_seconds=ub.seconds_estimate if ub else 0.0)
+
+
+def _bound_plan(project: Project, prob: lsm.Problem, graph, rights):
+    """The nested bound's size (bound.plan), None when not asked; deterministic drivers use
+    one outer path and one inner pair."""
+    spec = project.simulation
+    if not spec.upper_bound_paths:
+        return None
+    open_by = {r.name: lsm.open_mask(r, prob.times, spec.steps_per_year) for r in rights}
+    if not prob.uncertain:
+        return bound.plan(prob, graph, open_by, 1, 2)
+    return bound.plan(prob, graph, open_by, spec.upper_bound_paths, spec.upper_bound_inner)
 
 
 def guard_message(project: Project, pl: SimPlan, memory_available: int | None) -> str | None:
@@ -356,6 +375,25 @@ def guard_message(project: Project, pl: SimPlan, memory_available: int | None) -
         ratio = min(ratio, TIME_LIMIT / pl.seconds_estimate)
     if not excess:
         return None
+    spec = project.simulation
+    rest_m, rest_s = pl.memory_bytes - pl.bound_memory_bytes, pl.seconds_estimate - pl.bound_seconds
+    if spec.upper_bound_paths and (memory_available is None
+                                   or rest_m <= MEMORY_SHARE * memory_available) \
+            and rest_s <= TIME_LIMIT:
+        # the dual upper bound is what does not fit: its time grows with outer x inner paths
+        share = 1.0
+        if pl.bound_seconds and pl.seconds_estimate > TIME_LIMIT:
+            share = min(share, (TIME_LIMIT - rest_s) / pl.bound_seconds)
+        if memory_available is not None and pl.memory_bytes > MEMORY_SHARE * memory_available:
+            share = min(share, (MEMORY_SHARE * memory_available - rest_m)
+                        / max(1, pl.bound_memory_bytes))
+        outer = max(10, int(spec.upper_bound_paths * share * 0.9) // 10 * 10)
+        return (f"This run would need {' and '.join(excess)}, most of it for the dual upper "
+                f"bound ({spec.upper_bound_paths:,} outer paths x {spec.upper_bound_inner} "
+                f"inner paths over {pl.dates} dates; its time grows with outer x inner x "
+                f"dates^2). Fix: use --set simulation.upper_bound.paths={outer} (or fewer "
+                "inner paths: simulation.upper_bound.inner), or pass --allow-large to run "
+                "anyway.")
     smaller = max(100, int(pl.paths * ratio * 0.9) // 100 * 100)
     return (f"This run would need {' and '.join(excess)}: {pl.paths:,} + {pl.paths:,} paths, "
             f"{pl.dates} dates, {pl.states} states, {pl.solves} subsets of rights. Fix: use "
@@ -480,9 +518,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         if key not in cache:
             graph = build_state_graph(usable)
             full = key == full_key
-            pol = lsm.fit(prob, graph, x_fit, stats, open_by,
-                          all_states=full and ub_asked and not spec.upper_bound_nested,
-                          progress=prog)
+            pol = lsm.fit(prob, graph, x_fit, stats, open_by, progress=prog)
             res = lsm.run(prob, pol, x_val, record=full, progress=prog, mart=mart)
             v = res.values - (investment_pv if graph.states[graph.initial].invested else 0.0)
             cache[key] = (v, res.correction if res.correction is not None else np.zeros_like(v))
@@ -585,30 +621,23 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
 
 
 def _upper_bound(prob, pol, dyn, spec, anti, investment_pv, expanded, flex, prog) -> dict:
-    """The dual upper bound on the expanded NPV (``simulation.upper_bound``): nested
-    simulation of the fitted policy (Andersen & Broadie 2004, realopt.simulation.bound) or,
-    with ``nested: false``, the martingale of the fitted value function (lsm.upper_bound)."""
-    nested = spec.upper_bound_nested
+    """The dual upper bound on the expanded NPV (``simulation.upper_bound``) by nested
+    simulation of the fitted policy (Andersen & Broadie 2004; realopt.simulation.bound): its
+    value and standard error, the outer paths and inner paths asked, and the gap to the lower
+    estimate (money, and as a share of the flexibility value; null when that is 0)."""
     inner = spec.upper_bound_inner
     if prob.uncertain:
         m = spec.upper_bound_paths + (spec.upper_bound_paths % 2 if anti else 0)
         outer = simulate(dyn, prob.times, m, spec.seed, "upper", anti)
     else:                           # deterministic drivers: one path, one inner pair, exact
-        m, inner, anti = 1, 2, False
+        inner, anti = 2, False
         outer = simulate(dyn, prob.times, 1, spec.seed, "upper", False)
-    if nested:
-        z = bound.nested_upper_bound(prob, pol, dyn, outer, inner, spec.seed, progress=prog)
-        method = ("Andersen & Broadie (2004) duality: martingale of the fitted policy's own "
-                  "value, estimated by nested simulation")
-    else:
-        z = lsm.upper_bound(prob, pol, dyn, outer, inner, spec.seed, progress=prog)
-        method = ("dual bound with the martingale of the fitted value function (Haugh & Kogan "
-                  "2004), one-step inner draws")
+    z = bound.nested_upper_bound(prob, pol, dyn, outer, inner, spec.seed, progress=prog)
     invested0 = pol.graph.states[pol.graph.initial].invested
     z = z - (investment_pv if invested0 else 0.0)
     ub, ub_se = _mean_se(z, anti)
     return {"value": ub, "standard_error": ub_se, "paths": spec.upper_bound_paths,
-            "inner": spec.upper_bound_inner, "nested": nested, "method": method,
+            "inner": spec.upper_bound_inner, "method": bound.METHOD,
             "gap": ub - expanded, "gap_share": bound.gap_share(ub, expanded, flex)}
 
 

@@ -43,9 +43,10 @@ def check_text(path, project, memory) -> str:
                  f"year inside american windows); regression on {pl.regression_terms} terms "
                  f"(polynomial of degree {spec.basis} in "
                  f"{len([d for d in stoch if d.volatility > 0])} drivers)"
-                 + (f"; dual upper bound on {spec.upper_bound_paths:,} paths x "
-                               f"{spec.upper_bound_inner} inner draws" if spec.upper_bound_paths
-                               else ""))
+                 + (f"; dual upper bound by nested simulation on {spec.upper_bound_paths:,} "
+                    f"outer paths x {spec.upper_bound_inner} inner paths (about "
+                    f"{pl.bound_seconds:.0f} s of the time below)" if spec.upper_bound_paths
+                    else ""))
     lines.append(f"size: {pl.states} states, {pl.solves} subsets of rights fitted and valued; "
                  f"memory about {_bytes(pl.memory_bytes)}, time about "
                  f"{pl.seconds_estimate:.0f} s")
