@@ -346,19 +346,25 @@ def plan(prob: lsm.Problem, graph, open_by_right: dict, outer: int, inner: int) 
 
 
 def nested_upper_bound(prob: lsm.Problem, pol, dyn, outer: np.ndarray, inner: int, seed: int,
-                       progress=None) -> np.ndarray:
+                       progress=None, diagnostics: dict | None = None) -> np.ndarray:
     """Pathwise dual values on the ``outer`` paths (T, d, n); the upper bound is their mean
     (see the module doc). ``inner``: inner paths per outer path, date and state (rounded down to
-    antithetic pairs, at least one pair)."""
+    antithetic pairs, at least one pair). ``diagnostics``: receives ``chat`` (T, S, n), the
+    estimates C_k(s) on each outer path (0 where not needed)."""
     layout = Layout(prob, pol.graph, pol.open_edges, pol.sflows, dyn)
     control = ValueControl(prob, pol, dyn, layout, seed)
     n = outer.shape[-1]
     chunk = chunk_size(prob, layout, inner)
     out = np.empty(n)
+    chats = []
     for c, lo in enumerate(range(0, n, chunk)):
         hi = min(n, lo + chunk)
-        out[lo:hi] = _chunk(prob, pol, dyn, layout, control, outer[:, :, lo:hi], inner,
-                            generator(seed, "inner", c), progress)
+        out[lo:hi], chat = _chunk(prob, pol, dyn, layout, control, outer[:, :, lo:hi], inner,
+                                  generator(seed, "inner", c), progress)
+        if diagnostics is not None:
+            chats.append(chat)
+    if diagnostics is not None:
+        diagnostics["chat"] = np.concatenate(chats, axis=2)
     return out
 
 
@@ -507,7 +513,7 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
     for k in range(T - 1):
         for s in lay.spawn[k]:
             chat[k, s] = est[k, s]
-    return _dual(prob, pol, lay, X, chat, dest, cash, stay)
+    return _dual(prob, pol, lay, X, chat, dest, cash, stay), chat
 
 
 def lsm_chol(dyn, h):

@@ -233,11 +233,11 @@ class SimulationAppraisal:
                            pm(ub["value"], ub["standard_error"])))
             share = ub.get("gap_share")
             out += textwrap.wrap(
-                f"The expanded NPV of the best policy lies between the two, within their "
-                f"standard errors: a gap of {num(ub['gap'])}"
+                f"Bound less the expanded NPV: {num(ub['gap'])}"
                 + (f" ({100 * share:.1f}% of the flexibility value)" if share is not None else "")
-                + f"; bound by nested simulation, {ub['paths']:,} outer x {ub['inner']} inner "
-                "paths (Andersen & Broadie 2004)", width, subsequent_indent="  ")
+                + "; the value of the best policy lies between the two, within their standard "
+                f"errors (nested simulation, {ub['paths']:,} outer x {ub['inner']} inner paths; "
+                "Andersen & Broadie 2004)", width, subsequent_indent="  ")
         out.append("")
         out.append(f"Decision today: {self.decision_today}")
         rw = self.real_world_dcf
