@@ -740,11 +740,15 @@ def run(prob: Problem, pol: Policy, x: np.ndarray, record: bool = False, progres
     return Run(values=total, occupancy=occ, exercised=exe, correction=ctrl, first_use=first)
 
 
-# --- dual upper bound (Haugh & Kogan 2004; Andersen & Broadie 2004) ------------------------------
+# --- dual upper bound of the fitted value function (Haugh & Kogan 2004) ---------------------------
 
 def upper_bound(prob: Problem, pol: Policy, dyn, outer: np.ndarray, inner: int, seed: int,
                 progress=None) -> np.ndarray:
     """Pathwise dual values on the ``outer`` paths (T, d, n): the upper bound is their mean.
+
+    Not used by the appraisal, which takes the tighter bound of the policy's own value process
+    (realopt.simulation.bound, Andersen & Broadie 2004); kept as the cheap point of comparison
+    of the tests and tests/benchmarks/bench_simulation.py (needs ``fit(all_states=True)``).
 
     Martingale: for each state s, M_s increments d(k+1) [flow_s(k+1) + V_s(k+1)] less their
     conditional mean given date k, estimated from ``inner`` one-step draws per path, where
