@@ -328,8 +328,10 @@ def plan(prob: lsm.Problem, graph, open_by_right: dict, outer: int, inner: int) 
     """Inner path-steps, chunks, memory and CPU time of the nested bound on ``outer`` paths with
     ``inner`` inner paths: an upper estimate (inner paths that end early, at a sale, and dates
     where an estimate is not needed take less)."""
+    from .paths import dynamics
+
     lay = Layout(prob, graph, open_edges(graph, open_by_right, prob.T),
-                 prob.state_flows(graph))
+                 prob.state_flows(graph), dynamics(prob.model, "risk_neutral"))
     steps, alive = lay.steps_per_outer(inner)
     chunk = min(outer, chunk_size(prob, lay, inner))
     chunks = -(-outer // chunk)

@@ -498,8 +498,8 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     dyn = dynamics(prob.model, "risk_neutral")
     investment_pv = project.investment.present_value(project.market)
     masks = 2 ** len(names)
-    ub_asked = bool(spec.upper_bound_paths) and prob.uncertain
-    prog = _Progress((masks + 2) * 2 * prob.T + (prob.T if ub_asked else 0),
+    ub_plan = _bound_plan(project, prob, build_state_graph(rights), rights)
+    prog = _Progress((masks + 2) * 2 * prob.T + (ub_plan.chunks * prob.T if ub_plan else 0),
                      "realopt simulation") if progress else None
 
     x_fit = simulate(dyn, prob.times, n, spec.seed, "fit", anti)
