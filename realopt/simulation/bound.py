@@ -23,11 +23,18 @@ state held, is then found by backward induction along each outer path; its mean 
 bound in expectation for any martingale, and the zero-mean noise of the inner estimates can only
 raise it (Jensen's inequality on a maximum of functions linear in that noise).
 
-Variance: an inner path's flows of formulas affine in the drivers (untaxed) are replaced by their
-closed-form conditional value (:class:`lsm.ConditionalFlows`) taken when the path enters and
-leaves each state; this subtracts a zero-mean martingale, so the estimate stays unbiased and only
-the noise of the decisions remains. An inner path whose state can no longer move and whose flows
-are known is finished at once with its remaining value.
+Variance (inner noise raises the bound, so it is what keeps the bound tight): an inner path's
+flows of formulas affine in the drivers (untaxed) are replaced by their closed-form conditional
+value (:class:`lsm.ConditionalFlows`) taken when the path enters and leaves each state, and the
+increments of a polynomial martingale fitted to the policy's value (:class:`ValueControl`) are
+subtracted along the states it holds; both have mean zero, so the estimates stay unbiased.
+Every inner path of an outer path takes the same normals at a date (common random numbers), so
+the estimates that the maximum compares err together. An inner path whose state can no longer
+move and whose flows are known is finished at once with its remaining value.
+
+Work saved: C_k(s) is estimated only where a decision at k can differ from carrying on (it
+cancels elsewhere, :meth:`Layout.needed`), and a move that ends the project is left out of the
+maximum where it pays less than never moving again (it cannot be optimal there).
 
 Cost: outer x inner x (dates^2 / 2) path-steps per state. All inner paths started at every date of
 a chunk of outer paths move together through the dates (one array over outer x inner x start
@@ -450,7 +457,7 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
                 h = float(prob.times[j] - prob.times[j - 1])
                 key = round(h, 12)
                 if key not in chol:
-                    chol[key] = (lsm_chol(dyn, h), np.exp(-dyn.speed * h))
+                    chol[key] = (_step_cholesky(dyn, h), np.exp(-dyn.speed * h))
                 L, decay = chol[key]
                 if vc.active:
                     erows = vc.expected_rows(j, y)
@@ -518,7 +525,7 @@ def _chunk(prob, pol, dyn, lay: Layout, vc: ValueControl, X, inner, gen, progres
     return _dual(prob, pol, lay, X, chat, dest, cash, stay), chat
 
 
-def lsm_chol(dyn, h):
+def _step_cholesky(dyn, h):
     from ..drivers import _cholesky_psd
 
     return _cholesky_psd(dyn.step_cov(h))

@@ -331,7 +331,6 @@ def plan(project: Project) -> SimPlan:
     terms = prob.basis.terms
     sets = 2 * prob.T * max(d, 1) * n * 8
     work = 8 * n * (6 * S + 3 * terms + 2 * solves + 8)
-    spec = project.simulation
     ub = _bound_plan(project, prob, graph, rights)
     memory = int(sets + work + (ub.memory_bytes if ub else 0))
     dec = int(opened.sum())
