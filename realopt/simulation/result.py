@@ -196,8 +196,8 @@ class SimulationAppraisal:
         def num(x):
             return "" if x is None else f"{x:,.2f}"
 
-        def pm(x, e):
-            return f"{x:,.2f} +- {e:,.2f}"
+        def pm(x, e):          # a value computed in closed form has no sampling error
+            return f"{x:,.2f} (exact)" if e == 0 else f"{x:,.2f} +- {e:,.2f}"
 
         labels = [f"{r.name} ({r.type})" for r in self.rights]
         w = min(max([46] + [len(s) for s in labels]), width - 44)
@@ -527,8 +527,13 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     static, se_pv = estimate(base, base_c)
     if base_cv is not None:
         static, se_pv = float(exact) - investment_pv, 0.0
-    expanded, se_full = estimate(v_full, c_full)
+    _, se_full = estimate(v_full, c_full)
     flex, se_flex = estimate(v_full - base, c_full - base_c)
+    # the table adds up exactly: expanded = static + flexibility (the pathwise difference is the
+    # sharper estimate); with an exact static NPV its standard error is the flexibility's
+    expanded = static + flex
+    if base_cv is not None:
+        se_full = se_flex
     present_value = static + investment_pv
 
     plain_value = _plain_value(prob, dyn, x_val, anti)
@@ -944,6 +949,16 @@ def _what(r) -> str:
     return r.what("{:,.2f}")
 
 
+def _sig(x: float, digits: int = 4) -> str:
+    """``x`` to ``digits`` significant figures in plain notation with thousands separators
+    (15,630 rather than 1.563e+04: a driver's price reads as a price)."""
+    if x == 0 or not math.isfinite(x):
+        return f"{x:g}"
+    r = round(x, digits - 1 - math.floor(math.log10(abs(x))))
+    d = digits - 1 - math.floor(math.log10(abs(r)))      # 999.96 rounds up to 1,000
+    return f"{r:,.{max(d, 0)}f}"
+
+
 def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> str:
     head = f"{r.name}: {_what(r)} {_when(r)}"
     tail = f"; chance of use (real-world): {use_max:.0%} at its highest, {use_end:.0%} at year " \
@@ -968,14 +983,14 @@ def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> s
                 drv = ts[0].driver
                 if be and len(be) >= len(ab):
                     f, l = be[0], be[-1]
-                    txt = f"{action} if {drv} falls below {f.upper:,.4g} (year {f.year:.3g})"
+                    txt = f"{action} if {drv} falls below {_sig(f.upper)} (year {f.year:.3g})"
                     if l is not f:
-                        txt += f", {l.upper:,.4g} by year {l.year:.3g}"
+                        txt += f", {_sig(l.upper)} by year {l.year:.3g}"
                 elif ab:
                     f, l = ab[0], ab[-1]
-                    txt = f"{action} once {drv} exceeds {f.lower:,.4g} (year {f.year:.3g})"
+                    txt = f"{action} once {drv} exceeds {_sig(f.lower)} (year {f.year:.3g})"
                     if l is not f:
-                        txt += f", {l.lower:,.4g} by year {l.year:.3g}"
+                        txt += f", {_sig(l.lower)} by year {l.year:.3g}"
                 else:
                     txt = f"{action} at most {drv} values"
                 parts.append(txt)
