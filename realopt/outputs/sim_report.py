@@ -22,6 +22,7 @@ import pandas as pd
 
 from .. import __version__
 from ..simulation.result import CAUTION_SIMULATION
+from ..rights.registry import RIGHT_TYPES
 from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
@@ -43,6 +44,11 @@ CAPTIONS = {"cash_flow_fan": (
     "zero line, at least that share of paths has a negative margin that year: below zero at "
     "the 5th percentile means more than one year in twenty loses money, at the median more "
     "than half."),
+    "chance_of_use": (
+    "Solid lines follow the fitted policy on real-world paths (the chances to expect), dashed "
+    "lines on the risk-neutral paths that value it. A switch's shares count the paths in each "
+    "mode among all paths: before the investment is committed a path is in no mode yet, so the "
+    "shares add up to the chance of having invested."),
     "convergence": (
     "The expanded NPV re-appraised at a sixteenth and a quarter of the file's paths (same "
     "seed) beside the result itself (the rightmost point), each with one standard error. The "
@@ -89,7 +95,9 @@ def fig_convergence(pts, f: Fmt):
     ax = fig.add_subplot(1, 1, 1)
     ax.errorbar(n, v, yerr=e, fmt="o-", color="#4a6fa5", capsize=3)
     ax.set_xscale("log")
-    ax.set_xlabel("paths", fontsize=7)
+    ax.set_xticks(n, [f"{int(k):,}" for k in n])           # the path counts, as a reader counts
+    ax.minorticks_off()
+    ax.set_xlabel("paths (to fit the policy; as many again value it)", fontsize=7)
     ax.set_ylabel(f"expanded NPV ({f.unit_label}, today)", fontsize=7)
     ax.tick_params(which="both", labelsize=6)
     return fig
@@ -175,6 +183,7 @@ def fig_bridge(a, f: Fmt):
                     xytext=(0, 3), textcoords="offset points")
         base = top if not total else v
     ax.axhline(0, color="grey", lw=0.8)
+    ax.use_sticky_edges = False               # a floating bar's base must not clip the axis
     ax.margins(y=0.16)                        # room for the two-line labels above the bars
     ax.set_xticks(x, [textwrap_label(n) for n, _, _ in rows], fontsize=7)
     ax.set_ylabel(f"{f.unit_label} (today)")
@@ -262,7 +271,9 @@ def fig_chance(a):
     for i, r in enumerate(rights):
         ax = fig.add_subplot(len(rights), 1, i + 1)
         y = np.asarray(r.use_years)
-        label = ("switched at least once" if r.type == "switch" else "exercised by this date")
+        label = ("switched at least once" if r.mode_shares is not None else
+                 "invested by this date" if RIGHT_TYPES[r.type].commits else
+                 "exercised by this date")
         ax.plot(y, r.use_real_world, color="#4a6fa5", label=f"{label}, real-world")
         ax.plot(y, r.use_risk_neutral, color="#4a6fa5", ls="--",
                 label=f"{label}, risk-neutral")
