@@ -177,3 +177,24 @@ def test_windows_to_the_last_flow_are_named(appraisals):
     # ending a window earlier can only lower the value of that right (common practice)
     assert ended.flexibility_value <= a.flexibility_value + 3 * a.standard_error[
         "flexibility_value"]
+
+
+def test_user_slips_get_located_messages(tmp_path):
+    # a misspelt risk-neutral key and a misspelt driver in a salvage formula: every problem at
+    # its line, with the fix; a formula is never checked against an empty list of drivers
+    from realopt.errors import ProjectError
+
+    text = RESIN.read_text()
+    f = tmp_path / "slip.yaml"
+    f.write_text(text.replace("0.03 * resin + 10", "0.03 * rezin + 10"))
+    with pytest.raises(ProjectError) as err:
+        realopt.load_project(f)
+    assert "slip.yaml:" in str(err.value) and "did you mean resin?" in str(err.value)
+    f.write_text(text.replace("0.03 * resin + 10", "0.03 * rezin + 10").replace(
+        "{risk_premium: 0.05}", "{premium: 0.05}"))
+    with pytest.raises(ProjectError) as err:
+        realopt.load_project(f)
+    msg = str(err.value)
+    assert "did you mean risk_premium?" in msg
+    assert "no driver could be read" in msg and "(no drivers)" not in msg
+    assert msg.count("slip.yaml:") == 2

@@ -335,8 +335,9 @@ def plan(project: Project) -> SimPlan:
     if spec.upper_bound_paths:
         seconds += spec.upper_bound_paths * spec.upper_bound_inner * prob.T * (
             S + d + terms) * 30e-9
-    warnings = list(project.warnings) + structure_warnings(
-        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
+    warnings = list(project.warnings) + structure_warnings(     # the same words as appraise
+        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0,
+        terminal_value=prob.tv)
     return SimPlan(paths=n, dates=prob.T, decision_dates=dec, horizon=float(prob.times[-1]),
                    drivers=d, regression_terms=terms, states=S, solves=solves,
                    memory_bytes=memory, seconds_estimate=seconds, warnings=tuple(warnings))
