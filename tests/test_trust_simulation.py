@@ -198,3 +198,17 @@ def test_user_slips_get_located_messages(tmp_path):
     assert "did you mean risk_premium?" in msg
     assert "no driver could be read" in msg and "(no drivers)" not in msg
     assert msg.count("slip.yaml:") == 2
+
+
+def test_rules_in_one_driver_read_one_way(appraisals):
+    # common practice: invest or expand when the price is high, close when it is low. The fitted
+    # policy had bands at a few dates whose far bound sat in the tail of the paths (invest only
+    # below 15,000 at year 1.25); the stated thresholds read one way, the side of most dates.
+    a = appraisals(COPPER)
+    sides = {"Wait to develop": "above", "Second pit": "above", "Close the pit": "below"}
+    for r in a.rights:
+        live = [t for t in r.thresholds if not t.never]
+        assert live, r.name
+        assert r.side == sides[r.name], r.name
+        for t in live:
+            assert (t.lower is None) != (t.upper is None), (r.name, t)

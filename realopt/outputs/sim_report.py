@@ -44,6 +44,13 @@ CAPTIONS = {"cash_flow_fan": (
     "zero line, at least that share of paths has a negative margin that year: below zero at "
     "the 5th percentile means more than one year in twenty loses money, at the median more "
     "than half."),
+    "thresholds": (
+    "The driver's level at which each right is used, by date, read from the fitted policy with "
+    "the other drivers at their medians. With cash flows paid at each year's end, using a right "
+    "just after a payment earns nothing until the next one, so a threshold is highest just "
+    "after a payment date and falls towards the next: the saw-tooth is the timing of the flows, "
+    "not noise. Where the rule is one-sided at most dates, a far bound at a few dates in the "
+    "tail of the paths (where the regression rests on few of them) is not drawn."),
     "chance_of_use": (
     "Solid lines follow the fitted policy on real-world paths (the chances to expect), dashed "
     "lines on the risk-neutral paths that value it. A switch's shares count the paths in each "
@@ -238,6 +245,8 @@ def fig_maps(a):
 
 def fig_thresholds(a):
     """Exercise thresholds in the one stochastic driver's units, one panel per right."""
+    from matplotlib.ticker import FuncFormatter
+
     rights = [r for r in a.rights if r.thresholds]
     fig = _fig(2.4 * len(rights) + 0.4)
     for i, r in enumerate(rights):
@@ -258,6 +267,7 @@ def fig_thresholds(a):
                 ax.plot(y, hi, color=c, ls="--", marker="o", ms=3,
                         label=f"{action} from {state} when {d} is below the line")
         ax.set_ylabel(r.thresholds[0].driver, fontsize=7)
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.6g}"))    # 14,000
         ax.set_title(r.name, fontsize=8)
         ax.legend(fontsize=6, loc="best")
         ax.tick_params(labelsize=6)

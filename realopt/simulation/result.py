@@ -783,12 +783,32 @@ def _rules(prob, pol, x_fit, stats, spec):
                                                    _action(graph, graph.edges[e_id]), prob.names[j],
                                                    a, b, never))
                 cf_fit.append((s, k, eids))
-        thresholds[r.name] = tuple(sorted(thr, key=lambda t: t.year))
+        thresholds[r.name] = tuple(sorted(_one_sided(thr), key=lambda t: t.year))
         cf_rules[r.name] = _cash_flow_rule(prob, pol, x_fit, cf_fit)
     influence = {}
     if len(cols) >= 2:
         maps = _maps(prob, pol, med, lo, hi, spec)
     return thresholds, maps, cf_rules, influence
+
+
+def _one_sided(thr: list) -> list:
+    """Each (state, action)'s thresholds with the tail bound of a few bands dropped: where the
+    rule is one-sided ("above" or "below") at most dates, a band at the other dates has its far
+    bound in the tail of the paths, where the regression is fitted on few of them; that bound
+    describes the fit, not the decision a reader can use. The fitted policy (and so every value)
+    is unchanged; only the stated rule reads one way."""
+    from dataclasses import replace
+
+    out = []
+    for key in dict.fromkeys((t.state, t.action) for t in thr):
+        ts = [t for t in thr if (t.state, t.action) == key]
+        side = threshold_side(ts)
+        if side == "above":
+            ts = [replace(t, upper=None) if t.lower is not None else t for t in ts]
+        elif side == "below":
+            ts = [replace(t, lower=None) if t.upper is not None else t for t in ts]
+        out += ts
+    return out
 
 
 def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
