@@ -132,6 +132,7 @@ class SimulationAppraisal:
     cash_flow_value: float | None = None      # risk-neutral value of the file's plain flows
     cash_flow_fan: dict = field(default_factory=dict)  # percentile -> array at fan_years (real
     #                                         world; money per year; NaN where no flow is paid)
+    today_choices: dict | None = None         # appraise(today=True): see _today_choices
 
     @property
     def present_value_stderr(self) -> float:
@@ -441,8 +442,11 @@ def shapley_weights(n: int) -> list[float]:
     return [math.factorial(s) * math.factorial(n - s - 1) / math.factorial(n) for s in range(n)]
 
 
-def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
-    """Value every right of ``project`` by least-squares Monte Carlo; see the module doc."""
+def appraise(project: Project, *, progress: bool = True,
+             today: bool = False) -> SimulationAppraisal:
+    """Value every right of ``project`` by least-squares Monte Carlo; see the module doc.
+    ``today``: also value the decisions open today (``today_choices``, for realopt.portfolio;
+    one more forward pass, nothing else changes)."""
     t_start = time.monotonic()
     _check_project(project)
     spec = project.simulation
@@ -528,6 +532,7 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     if base_cv is not None:
         static, se_pv = float(exact) - investment_pv, 0.0
     expanded, se_full = estimate(v_full, c_full)
+    choices = _today_choices(prob, pol, x_val, v_full, estimate) if today else None
     flex, se_flex = estimate(v_full - base, c_full - base_c)
     present_value = static + investment_pv
 
@@ -594,7 +599,58 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         warnings=tuple(warnings), state_graph=graph, driver_maps=tuple(maps),
         fan_years=fan_years, fan=fan, cash_flow_fan=cf_fan,
         base=base_description(rights, "the cash flows of the drivers as given"),
-        headline_warnings=tuple(headline), cash_flow_value=plain_value)
+        headline_warnings=tuple(headline), cash_flow_value=plain_value,
+        today_choices=choices)
+
+
+def _today_choices(prob, pol, x_val, v_full, estimate) -> dict:
+    """The decisions open today, valued on the valuing paths with the fitted policy of every
+    right (money valued today; standard errors with the appraisal's own control variates).
+
+    * ``commit_now_value``: the paths start today in the invested state the commitment reaches
+      (its own decisions today first, as on the lattice), then follow the policy; less the
+      commitment's cost today (the investment's present value). Without a defer right the
+      project is committed today: the expanded NPV itself.
+    * ``keep_option_value``: the paths stay uncommitted today (no commitment at date 0), then
+      follow the policy (which may commit later); None without a defer right.
+    * ``commit_minus_keep_se``: standard error of the pathwise difference of the two.
+
+    The drivers are known today, so the fitted policy takes one decision today on every path:
+    the expanded NPV's pathwise values are exactly those of that decision (reused, not
+    recomputed); the other decision takes one more forward pass. The policy is handed a start
+    state (``graph.initial``) or today's open edges without the commitment; lsm is unchanged."""
+    from dataclasses import replace
+
+    from ..rights import Action
+
+    graph = pol.graph
+    s0 = graph.initial
+    full, full_se = estimate(v_full)
+    if graph.states[s0].invested:
+        return {"commit_now_value": full, "commit_now_se": full_se, "keep_option_value": None,
+                "keep_option_se": None, "commit_minus_keep_se": None}
+    e = next(e for e in graph.edges if e.source == s0 and e.action == Action.COMMIT)
+    committed = False
+    if 0 in pol.open_edges:
+        new, _, _ = lsm.decide(prob, pol, 0, x_val[0][:, :1], np.array([s0]))
+        committed = int(new[0]) != s0
+    if committed:
+        commit = v_full
+        held = {k: v for k, v in pol.open_edges.items() if k != 0}
+        rest = [i for i in pol.open_edges[0] if graph.edges[i].source != s0]
+        if rest:
+            held[0] = rest
+        keep = lsm.run(prob, replace(pol, open_edges=held), x_val).values
+    else:
+        keep = v_full
+        n = x_val.shape[-1]
+        cost = np.broadcast_to(prob.money(e, 0, x_val[0]), (n,)) * prob.disc[0]
+        start = replace(pol, graph=replace(graph, initial=e.target))
+        commit = lsm.run(prob, start, x_val).values + cost
+    c, c_se = estimate(commit)
+    k, k_se = estimate(keep)
+    return {"commit_now_value": c, "commit_now_se": c_se, "keep_option_value": k,
+            "keep_option_se": k_se, "commit_minus_keep_se": estimate(commit - keep)[1]}
 
 
 def lsm_min_paths(prob: lsm.Problem) -> int:
