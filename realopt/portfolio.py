@@ -271,8 +271,8 @@ def close_calls(groups, spread, picked, budget, z: float = CLOSE) -> list[dict]:
     combination with p held at k (exact, :func:`choose`); it is a close call when the chosen sum
     exceeds it by less than z standard errors of the difference (projects are appraised
     independently: the variance is the sum, over the projects whose decision differs, of the
-    variance of that project's difference). Each: {"changes": [(project index, new decision,
-    chosen decision)], "value": its sum, "chosen": the chosen sum, "difference", "se"}; distinct
+    variance of that project's difference). Each: {"alternative": option index per project,
+    "changes": [(project index, new decision, chosen decision)], "value": its sum, "chosen": the chosen sum, "difference", "se"}; distinct
     combinations only, closest (smallest difference / se) first. Lattice projects add 0."""
     chosen = sum((_exact(g[k].value) for g, k in zip(groups, picked)), _exact(0.0))
     cap = None if budget is None else _exact(budget)
@@ -290,7 +290,8 @@ def close_calls(groups, spread, picked, budget, z: float = CLOSE) -> list[dict]:
             se = math.sqrt(sum(spread(q, picked[q], alt[q]) ** 2 for q in moved))
             diff = float(chosen - value)
             if se > 0 and diff < z * se:
-                out.append({"changes": [(q, groups[q][alt[q]].decision,
+                out.append({"alternative": list(alt),
+                            "changes": [(q, groups[q][alt[q]].decision,
                                          groups[q][picked[q]].decision) for q in moved],
                             "value": float(value), "chosen": float(chosen),
                             "difference": diff, "se": se})
