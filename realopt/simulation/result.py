@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -66,6 +66,9 @@ class DriverMap:
     y_values: np.ndarray
     codes: np.ndarray
     others: dict
+    change: float | None = None     # the share of the plane whose best action changes between
+    #                                 this date and an adjacent decision date, which chose it
+    #                                 (None: the first decision date, or every date is shown)
 
 
 @dataclass(frozen=True)
@@ -619,7 +622,6 @@ def _today_choices(prob, pol, x_val, v_full, estimate) -> dict:
     the expanded NPV's pathwise values are exactly those of that decision (reused, not
     recomputed); the other decision takes one more forward pass. The policy is handed a start
     state (``graph.initial``) or today's open edges without the commitment; lsm is unchanged."""
-    from dataclasses import replace
 
     from ..rights import Action
 
@@ -890,7 +892,16 @@ def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
     return out
 
 
+MAP_DATES = ("the first decision date, then the dates where the fitted policy changes most "
+             "between consecutive decision dates (the largest share of the plane whose best "
+             "action changes), each change shown at whichever of its two dates has more of "
+             "the plane in an action")
+
+
 def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
+    """Decision maps of each state with a choice at up to ``n_dates`` dates (:func:`_map_dates`),
+    in the plane of two drivers (``map_drivers`` or the two the gains depend on most), the
+    others at their median; ``size`` x ``size`` points between the 1% and 99% points."""
     graph = pol.graph
     cols = prob.basis.cols
     names = prob.names
@@ -913,30 +924,90 @@ def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
         ks = [k for k in dates if any(graph.edges[e].source == s for e in pol.open_edges[k])]
         if not ks:
             continue
-        pick = sorted({ks[int(i)] for i in np.round(np.linspace(0, len(ks) - 1,
-                                                                min(n_dates, len(ks))))})
+        pick, change = _map_dates(prob, pol, s, ks, a, b, med, lo, hi, n_dates)
         for k in pick:
-            xs = np.linspace(lo[k][a], hi[k][a], size)
-            ys = np.linspace(lo[k][b], hi[k][b], size)
-            gx, gy = np.meshgrid(xs, ys)
-            xg = np.repeat(med[k][:, None], size * size, axis=1)
-            xg[a], xg[b] = gx.ravel(), gy.ravel()
-            gains = _gains(prob, pol, k, s, xg)
-            eids = list(gains)
-            best = np.zeros(size * size)
-            code = np.zeros(size * size, dtype=np.int16)
-            for c, e_id in enumerate(eids, start=1):
-                better = gains[e_id] > best
-                best = np.where(better, gains[e_id], best)
-                code = np.where(better, c, code)
-            labels = ("carry on" if graph.states[s].invested else "wait",) + tuple(
-                f"{graph.edges[e].right}: {_action(graph, graph.edges[e])}" for e in eids)
-            out.append(DriverMap(state=graph.states[s].label, year=float(prob.times[k]),
-                                 actions=labels, x_driver=names[a], y_driver=names[b],
-                                 x_values=xs, y_values=ys, codes=code.reshape(size, size),
-                                 others={names[j]: float(med[k][j]) for j in range(len(names))
-                                         if j not in (a, b)}))
+            out.append(replace(_map_at(prob, pol, s, k, a, b, med, lo, hi, size),
+                               change=change.get(k)))
     return out
+
+
+def _map_at(prob, pol, s, k, a, b, med, lo, hi, size) -> DriverMap:
+    """The best action from state s at date k on a ``size`` x ``size`` grid of drivers a and b
+    between their 1% and 99% points on the fitting paths, the others at their median."""
+    graph = pol.graph
+    names = prob.names
+    xs = np.linspace(lo[k][a], hi[k][a], size)
+    ys = np.linspace(lo[k][b], hi[k][b], size)
+    gx, gy = np.meshgrid(xs, ys)
+    xg = np.repeat(med[k][:, None], size * size, axis=1)
+    xg[a], xg[b] = gx.ravel(), gy.ravel()
+    gains = _gains(prob, pol, k, s, xg)
+    eids = list(gains)
+    best = np.zeros(size * size)
+    code = np.zeros(size * size, dtype=np.int16)
+    for c, e_id in enumerate(eids, start=1):
+        better = gains[e_id] > best
+        best = np.where(better, gains[e_id], best)
+        code = np.where(better, c, code)
+    labels = ("carry on" if graph.states[s].invested else "wait",) + tuple(
+        f"{graph.edges[e].right}: {_action(graph, graph.edges[e])}" for e in eids)
+    return DriverMap(state=graph.states[s].label, year=float(prob.times[k]),
+                     actions=labels, x_driver=names[a], y_driver=names[b],
+                     x_values=xs, y_values=ys, codes=code.reshape(size, size),
+                     others={names[j]: float(med[k][j]) for j in range(len(names))
+                             if j not in (a, b)})
+
+
+def _map_dates(prob, pol, s, ks, a, b, med, lo, hi, n_dates, size=21):
+    """(dates, {date: share changed}) of the maps of state s among its decision dates ``ks``
+    (indices of ``prob.times``, ascending): the first, then the dates of the ``n_dates - 1``
+    largest changes of the fitted policy between consecutive decision dates, in date order.
+
+    A change is the share of the plane whose best action differs between two consecutive dates,
+    on one ``size`` x ``size`` grid of drivers a and b spanning every date's 1%-99% box (the
+    others at each date's median), counting the points inside both dates' boxes (outside its
+    box a date's fit is held at its edge). Each change is shown by the one of its two dates
+    with more of the plane in an action (so a window that opens, or a rule used just before a
+    cash-flow date, is shown where it is used; ties: the later date); a date's score is its
+    largest change, and ties go to the earlier date. Without enough changes, evenly spaced
+    dates fill the rest."""
+    if len(ks) <= n_dates:
+        return list(ks), {}
+    xs = np.linspace(min(lo[k][a] for k in ks), max(hi[k][a] for k in ks), size)
+    ys = np.linspace(min(lo[k][b] for k in ks), max(hi[k][b] for k in ks), size)
+    gx, gy = (v.ravel() for v in np.meshgrid(xs, ys))
+    codes, boxes = [], []
+    for k in ks:
+        xg = np.repeat(med[k][:, None], gx.size, axis=1)
+        xg[a], xg[b] = gx, gy
+        best = np.zeros(gx.size)
+        code = np.full(gx.size, -1, dtype=np.int64)      # -1: carry on / wait
+        for e_id, g in _gains(prob, pol, k, s, xg).items():
+            better = g > best
+            best = np.where(better, g, best)
+            code = np.where(better, e_id, code)
+        codes.append(code)
+        boxes.append((gx >= lo[k][a]) & (gx <= hi[k][a]) & (gy >= lo[k][b]) & (gy <= hi[k][b]))
+    score: dict = {}
+    for i in range(1, len(ks)):
+        both = boxes[i] & boxes[i - 1]
+        if not both.any():
+            continue
+        moved = float((codes[i][both] != codes[i - 1][both]).mean())
+        if moved <= 0:
+            continue
+        used = [float((codes[j][both] >= 0).mean()) for j in (i - 1, i)]
+        k = ks[i] if used[1] >= used[0] else ks[i - 1]
+        score[k] = max(score.get(k, 0.0), moved)
+    ranked = sorted((k for k in score if k != ks[0]), key=lambda k: (-score[k], k))
+    pick = [ks[0]] + ranked[: n_dates - 1]
+    even = [ks[int(i)] for i in np.round(np.linspace(0, len(ks) - 1, n_dates))]
+    for k in even + list(ks):                        # too few changes: evenly spaced dates
+        if len(pick) >= n_dates:
+            break
+        if k not in pick:
+            pick.append(k)
+    return sorted(pick), score
 
 
 def _sample(T: int, limit: int = 240) -> np.ndarray:
