@@ -40,7 +40,9 @@ def register(sub) -> None:
             today (commit now / keep the option / pass) that give the largest sum of values with
             today's outlays within the budget, solved exactly, and the value the budget gives
             up. Also DIR/portfolio.md and DIR/portfolio.html. Amounts are in the projects'
-            money (the files should share one currency and unit)."""),
+            money (the files should share one currency and unit). Files valued by simulation
+            (valuation: simulation) may be mixed with lattice ones: their values carry standard
+            errors, and the summaries name any choice within two standard errors of another."""),
         epilog=textwrap.dedent("""\
             examples:
               realopt portfolio projects/coating_line.yaml projects/peaking_unit.yaml
