@@ -21,8 +21,8 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..simulation.result import CAUTION_SIMULATION
 from ..rights.registry import RIGHT_TYPES
+from ..simulation.result import CAUTION_SIMULATION, MAP_DATES
 from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
@@ -62,6 +62,11 @@ CAPTIONS = {"cash_flow_fan": (
     "fitted exercise policy is one feasible policy, so each value is low-biased: it should "
     "settle as paths grow, and a rise beyond the error bars means more paths would still add "
     "value.")}
+
+CAPTIONS["decision_maps"] = (
+    "The best action of the fitted policy from each state, between the 1st and 99th "
+    "percentiles of the fitting paths at each date, the other drivers at their median. Dates: "
+    + MAP_DATES + "; a date whose drivers are known (today) has no plane and is left out.")
 
 
 def not_drawn(pngs) -> str:
