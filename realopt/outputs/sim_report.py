@@ -231,7 +231,7 @@ def fig_maps(a):
             ax.pcolormesh(np.asarray(m.x_values), np.asarray(m.y_values), m.codes,
                           cmap=ListedColormap(colours[:n]), vmin=-0.5, vmax=n - 0.5,
                           shading="nearest")
-            ax.set_title(f"year {m.year:.4g}", fontsize=7)
+            ax.set_title(f"year {round(m.year, 2):g}", fontsize=7)
             ax.set_xlabel(m.x_driver, fontsize=7)
             ax.set_ylabel(m.y_driver if j == 0 else "", fontsize=7)
             ax.tick_params(labelsize=6)
