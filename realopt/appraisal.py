@@ -18,6 +18,7 @@ import functools
 import gc
 import math
 from dataclasses import dataclass, replace
+from typing import ClassVar
 
 import numpy as np
 
@@ -95,6 +96,7 @@ class DecisionMap:
 class Appraisal:
     """Result of :func:`appraise`. ``to_dict()`` is the JSON contract; ``summary()`` a table."""
 
+    method: ClassVar[str] = "lattice"      # as SimulationAppraisal.method: which valuer
     project: Project
     present_value: float
     investment_pv: float
@@ -149,7 +151,7 @@ class Appraisal:
             "warnings": list(self.warnings),
             "headline_warnings": list(self.headline_warnings),
             "caution": CAUTION,
-            "method": "lattice",         # DESIGN "Valuation on the drivers": exact on the tree
+            "method": self.method,         # DESIGN "Valuation on the drivers": exact on the tree
             # the lattice is exact given V0; a V0 estimated by simulation carries its error
             "standard_error": {"present_value": self.present_value_stderr, "expanded_npv": 0.0,
                                "flexibility_value": 0.0},

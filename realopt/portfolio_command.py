@@ -40,7 +40,9 @@ def register(sub) -> None:
             today (commit now / keep the option / pass) that give the largest sum of values with
             today's outlays within the budget, solved exactly, and the value the budget gives
             up. Also DIR/portfolio.md and DIR/portfolio.html. Amounts are in the projects'
-            money (the files should share one currency and unit)."""),
+            money (the files should share one currency and unit). Files valued by simulation
+            (valuation: simulation) may be mixed with lattice ones: their values carry standard
+            errors, and the summaries name any choice within two standard errors of another."""),
         epilog=textwrap.dedent("""\
             examples:
               realopt portfolio projects/coating_line.yaml projects/peaking_unit.yaml
@@ -80,10 +82,24 @@ def _prepare(out: Path) -> None:
                            "portfolio. Fix: name a new or empty folder")
 
 
-def run_portfolio(args) -> int:
-    from .cli import _out, guard_message, load_from_args
-    from .fanout import Resolver, dask_client, run_all
+def _refusal(project) -> str | None:
+    """Why ``project`` would not fit this machine (None when it fits): the lattice's guard, or
+    the simulation's (paths, dates, subsets of rights), as ``realopt appraise`` applies them.
+    The simulation's check also refuses too few paths for the regression, located."""
+    from .cli import available_memory, guard_message
+
+    if project.valuation == "simulation":
+        from .simulation.result import guard_message as sim_guard, plan
+
+        return sim_guard(project, plan(project), available_memory())
     from .lattice import plan as make_plan
+
+    return guard_message(project, make_plan(project))
+
+
+def run_portfolio(args) -> int:
+    from .cli import _out, load_from_args
+    from .fanout import Resolver, dask_client, run_all
     from .outputs.portfolio_summary import html_summary, markdown_summary
     from .sweep import write_atomic
 
@@ -95,12 +111,7 @@ def run_portfolio(args) -> int:
     for f in args.files:                          # validate everything before any work is sent
         try:
             project = resolver(load_from_args(args, f))
-            if project.valuation == "simulation":
-                raise ValuationError(
-                    f"{f}: valuation: simulation is not covered by realopt portfolio yet (the "
-                    "choices today are read off the lattice). Fix: appraise it with realopt "
-                    "appraise, or value it on the lattice for the portfolio")
-            refusal = None if args.allow_large else guard_message(project, make_plan(project))
+            refusal = None if args.allow_large else _refusal(project)
             if refusal:
                 raise ValuationError(f"{f}: {refusal}")
             projects.append(project)
@@ -142,5 +153,9 @@ def run_portfolio(args) -> int:
         line += (f"; within the budget of {args.budget:,.2f}: value "
                  f"{totals['value_under_budget']:,.2f} (without the budget {totals['value_without_budget']:,.2f}, given up "
                  f"{totals['value_given_up']:,.2f})")
+    close = totals.get("close_calls", {})
+    if any(close.values()):
+        line += ("; some choices are within two standard errors of another, not settled by "
+                 "the simulation (see portfolio.md)")
     _out(line)
     return 0

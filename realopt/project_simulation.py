@@ -156,6 +156,12 @@ def formula(b, path, value, what):
         b.bad(path, f"a formula that cannot be used: {err}", f"{what}: whitelisted arithmetic "
               "over the driver names (+ - * / ** parentheses, numbers, min, max)")
         return None
+    if parsed.names and not names:       # the drivers themselves could not be read: say that
+        b.bad(path, "a formula over " + ", ".join(sorted(set(parsed.names))) + " while no "
+              "driver could be read", f"{what} over the names of underlying.drivers",
+              "fix the problems reported under underlying.drivers first (a simulation "
+              "project needs the drivers form)")
+        return None
     ok = True
     for n in sorted(set(parsed.names) - set(names)):
         hint = difflib.get_close_matches(n, list(names), n=1)

@@ -38,12 +38,15 @@ def test_value_bridge_invariants(path, appraisals):
     # Common practice: adding a right never lowers the value (flexibility, every marginal
     # contribution and so every Shapley share and standalone value >= 0); Shapley efficiency
     # (Shapley 1953): the shares sum to value(all) - value(none); the bridge adds up.
+    # Under valuation: simulation a value is an estimate: >= 0 within three of its standard
+    # errors (common practice); the sums below hold exactly on the same paths.
     a = appraisals(path)
     tol = 1e-9 * max(1.0, abs(a.present_value))
-    assert a.flexibility_value >= -tol
+    sim = a.method == "simulation"
+    assert a.flexibility_value >= -tol - (3 * a.standard_error["flexibility_value"] if sim else 0)
     for r in a.rights:
-        assert r.shapley_value >= -tol, r.name
-        assert r.standalone_value >= -tol, r.name
+        assert r.shapley_value >= -tol - (3 * r.shapley_standard_error if sim else 0), r.name
+        assert r.standalone_value >= -tol - (3 * r.standalone_standard_error if sim else 0), r.name
     assert sum(r.shapley_value for r in a.rights) == pytest.approx(a.flexibility_value, abs=tol)
     assert a.static_npv + a.flexibility_value == pytest.approx(a.expanded_npv, abs=tol)
     assert sum(r.standalone_value for r in a.rights) + a.interaction == pytest.approx(

@@ -1,7 +1,9 @@
 """Markdown and HTML summaries of ``realopt portfolio`` (from its table and totals).
 
 Amounts in the projects' money, valued today, two decimals (``tables.Fmt.money``). Both carry
-the caution. The HTML page is self-contained (no scripts, no network) and marks each number cell
+the caution. With a simulation project the table shows the method and each value's standard
+error (0 on the lattice), and a sentence names the choices the simulation does not settle
+(``totals["close_calls"]``, realopt.portfolio.close_calls). The HTML page is self-contained (no scripts, no network) and marks each number cell
 with its exact value (``data-value``), as the report does.
 """
 from __future__ import annotations
@@ -11,9 +13,13 @@ import html
 from .. import CAUTION
 from .tables import Fmt
 
-_COLUMNS = (("project", "Project", False), ("expanded_npv", "Expanded NPV", True),
+_COLUMNS = (("project", "Project", False), ("method", "Valued by", False),
+            ("expanded_npv", "Expanded NPV", True),
+            ("expanded_npv_se", "Standard error", True),
             ("commit_now_value", "Value if committed today", True),
+            ("commit_now_se", "Standard error", True),
             ("keep_option_value", "Value of keeping the option", True),
+            ("keep_option_se", "Standard error", True),
             ("outlay_today", "Outlay today", True),
             ("value_per_outlay", "Expanded NPV per unit of outlay", True),
             ("decision_without_budget", "Best decision, no budget", False),
@@ -47,13 +53,57 @@ def _totals_lines(totals, money):
                    f"budget: {Fmt.money(totals['value_given_up'])}{m}.")
         out.append("The budgeted choice is exact: the largest sum of values over every "
                    "combination of decisions whose outlays today fit the budget.")
+    close = totals.get("close_calls")
+    if close is not None:
+        budgeted = totals.get("budget") is not None
+        if close["without_budget"] and not (budgeted and totals["value_given_up"] == 0):
+            out.append(_close_sentence(close["without_budget"], "Without a budget", m))
+        if budgeted and close["under_budget"]:
+            out.append(_close_sentence(close["under_budget"], "Within the budget", m))
+        if not close["without_budget"] and not close["under_budget"]:
+            out.append("Every choice above is settled by the simulation: no other decision "
+                       "comes within two standard errors of the one chosen.")
     return out
+
+
+def _close_sentence(calls, head: str, m: str) -> str:
+    """One sentence: the closest alternative to the chosen decisions (``calls`` closest first,
+    realopt.portfolio.close_calls) and how many others are as close."""
+    c = calls[0]
+    moves = "; ".join(f"{name}: {new} instead of {old}" for name, new, old in c["changes"])
+    more = len(calls) - 1
+    tail = (f"; {more} other set{'s' if more > 1 else ''} of decisions "
+            f"{'are' if more > 1 else 'is'} as close" if more else "")
+    return (f"{head}, the simulation does not settle the choice: the decisions chosen (sum "
+            f"{Fmt.money(c['chosen'])}{m}) and those with {moves} (sum "
+            f"{Fmt.money(c['value'])}{m}) are within two standard errors of each other "
+            f"(difference {Fmt.money(c['difference'])} +- {Fmt.money(c['se'])}{m}){tail}; "
+            "more paths would separate them.")
 
 
 _READ = ("Value if committed today: the expanded NPV when the project is committed now (its "
          "other rights kept). Value of keeping the option: the value of holding the right to "
          "wait, with no outlay today (projects with a defer right). Pass: value 0. Outlay today: "
          "the cash paid at year 0 on committing now.")
+_READ_SIMULATION = (
+    "Projects valued by simulation: each value is an estimate with its standard error; "
+    "committing now and keeping the option are valued on the same paths with the same fitted "
+    "policy, and the expanded NPV is the value of the decision that policy takes today. The "
+    "decisions use the estimates as they stand.")
+
+
+def _cautions(df) -> list[str]:
+    """The caution of each method in the table (the lattice's alone for lattice projects)."""
+    methods = set(df["method"]) if "method" in df.columns else {"lattice"}
+    if "simulation" not in methods:
+        return [CAUTION]
+    from ..simulation.result import CAUTION_SIMULATION
+
+    return ([CAUTION] if methods - {"simulation"} else []) + [CAUTION_SIMULATION]
+
+
+def _read(df) -> str:
+    return _READ + (" " + _READ_SIMULATION if "method" in df.columns else "")
 
 
 def markdown_summary(df, totals, money: str = "", notes=()) -> str:
@@ -65,9 +115,10 @@ def markdown_summary(df, totals, money: str = "", notes=()) -> str:
     lines.append("|" + "|".join("---:" if c[2] else "---" for c in cols) + "|")
     for row in rows:
         lines.append("| " + " | ".join(t.replace("|", "\\|") for t, _ in row) + " |")
-    lines += [""] + _totals_lines(totals, money) + [""] + [_READ] + [""]
+    lines += [""] + _totals_lines(totals, money) + [""] + [_read(df)] + [""]
     lines += [f"Note: {n}" for n in notes] + ([""] if notes else [])
-    lines += [CAUTION, ""]
+    for c in _cautions(df):
+        lines += [c, ""]
     return "\n".join(lines)
 
 
@@ -107,8 +158,8 @@ unit of today's outlay.</p>
 {chr(10).join(body)}
 </tbody></table>
 {paras}
-<p>{e(_READ)}</p>
+<p>{e(_read(df))}</p>
 {note}
-<p class="caution">{e(CAUTION)}</p>
+{"".join(f'<p class="caution">{e(c)}</p>' for c in _cautions(df))}
 </body></html>
 """

@@ -21,7 +21,8 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..simulation.result import CAUTION_SIMULATION
+from ..rights.registry import RIGHT_TYPES
+from ..simulation.result import CAUTION_SIMULATION, MAP_DATES
 from .tables import Fmt
 
 NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
@@ -43,12 +44,29 @@ CAPTIONS = {"cash_flow_fan": (
     "zero line, at least that share of paths has a negative margin that year: below zero at "
     "the 5th percentile means more than one year in twenty loses money, at the median more "
     "than half."),
+    "thresholds": (
+    "The driver's level at which each right is used, by date, read from the fitted policy with "
+    "the other drivers at their medians. With cash flows paid at each year's end, using a right "
+    "just after a payment earns nothing until the next one, so a threshold is highest just "
+    "after a payment date and falls towards the next: the saw-tooth is the timing of the flows, "
+    "not noise. Where the rule is one-sided at most dates, a far bound at a few dates in the "
+    "tail of the paths (where the regression rests on few of them) is not drawn."),
+    "chance_of_use": (
+    "Solid lines follow the fitted policy on real-world paths (the chances to expect), dashed "
+    "lines on the risk-neutral paths that value it. A switch's shares count the paths in each "
+    "mode among all paths: before the investment is committed a path is in no mode yet, so the "
+    "shares add up to the chance of having invested."),
     "convergence": (
     "The expanded NPV re-appraised at a sixteenth and a quarter of the file's paths (same "
     "seed) beside the result itself (the rightmost point), each with one standard error. The "
     "fitted exercise policy is one feasible policy, so each value is low-biased: it should "
     "settle as paths grow, and a rise beyond the error bars means more paths would still add "
     "value.")}
+
+CAPTIONS["decision_maps"] = (
+    "The best action of the fitted policy from each state, between the 1st and 99th "
+    "percentiles of the fitting paths at each date, the other drivers at their median. Dates: "
+    + MAP_DATES + "; a date whose drivers are known (today) has no plane and is left out.")
 
 
 def not_drawn(pngs) -> str:
@@ -89,7 +107,9 @@ def fig_convergence(pts, f: Fmt):
     ax = fig.add_subplot(1, 1, 1)
     ax.errorbar(n, v, yerr=e, fmt="o-", color="#4a6fa5", capsize=3)
     ax.set_xscale("log")
-    ax.set_xlabel("paths", fontsize=7)
+    ax.set_xticks(n, [f"{int(k):,}" for k in n])           # the path counts, as a reader counts
+    ax.minorticks_off()
+    ax.set_xlabel("paths (to fit the policy; as many again value it)", fontsize=7)
     ax.set_ylabel(f"expanded NPV ({f.unit_label}, today)", fontsize=7)
     ax.tick_params(which="both", labelsize=6)
     return fig
@@ -175,6 +195,7 @@ def fig_bridge(a, f: Fmt):
                     xytext=(0, 3), textcoords="offset points")
         base = top if not total else v
     ax.axhline(0, color="grey", lw=0.8)
+    ax.use_sticky_edges = False               # a floating bar's base must not clip the axis
     ax.margins(y=0.16)                        # room for the two-line labels above the bars
     ax.set_xticks(x, [textwrap_label(n) for n, _, _ in rows], fontsize=7)
     ax.set_ylabel(f"{f.unit_label} (today)")
@@ -210,7 +231,7 @@ def fig_maps(a):
             ax.pcolormesh(np.asarray(m.x_values), np.asarray(m.y_values), m.codes,
                           cmap=ListedColormap(colours[:n]), vmin=-0.5, vmax=n - 0.5,
                           shading="nearest")
-            ax.set_title(f"year {m.year:.4g}", fontsize=7)
+            ax.set_title(f"year {round(m.year, 2):g}", fontsize=7)
             ax.set_xlabel(m.x_driver, fontsize=7)
             ax.set_ylabel(m.y_driver if j == 0 else "", fontsize=7)
             ax.tick_params(labelsize=6)
@@ -229,6 +250,8 @@ def fig_maps(a):
 
 def fig_thresholds(a):
     """Exercise thresholds in the one stochastic driver's units, one panel per right."""
+    from matplotlib.ticker import FuncFormatter
+
     rights = [r for r in a.rights if r.thresholds]
     fig = _fig(2.4 * len(rights) + 0.4)
     for i, r in enumerate(rights):
@@ -249,6 +272,7 @@ def fig_thresholds(a):
                 ax.plot(y, hi, color=c, ls="--", marker="o", ms=3,
                         label=f"{action} from {state} when {d} is below the line")
         ax.set_ylabel(r.thresholds[0].driver, fontsize=7)
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:,.6g}"))    # 14,000
         ax.set_title(r.name, fontsize=8)
         ax.legend(fontsize=6, loc="best")
         ax.tick_params(labelsize=6)
@@ -262,7 +286,9 @@ def fig_chance(a):
     for i, r in enumerate(rights):
         ax = fig.add_subplot(len(rights), 1, i + 1)
         y = np.asarray(r.use_years)
-        label = ("switched at least once" if r.type == "switch" else "exercised by this date")
+        label = ("switched at least once" if r.mode_shares is not None else
+                 "invested by this date" if RIGHT_TYPES[r.type].commits else
+                 "exercised by this date")
         ax.plot(y, r.use_real_world, color="#4a6fa5", label=f"{label}, real-world")
         ax.plot(y, r.use_risk_neutral, color="#4a6fa5", ls="--",
                 label=f"{label}, risk-neutral")

@@ -46,6 +46,10 @@ class Defer(BaseRight):
                     f"{replace(self.cost, today=None).describe(money)})")
         return f"commit the investment (cost {self.cost.describe(money)})"
 
+    def action_text(self, edge):
+        """Using a defer right means investing: thresholds and maps name that, not "defer"."""
+        return "invest"
+
     def input_rows(self, f, schedule_text):
         return [("Cost on exercise", schedule_text(self.cost, f))]
 

@@ -352,9 +352,9 @@ def structure_warnings(sg: StateGraph, last_flow_year: float | None, horizon: fl
             what = r.proceeds
             if terminal_value is not None and terminal_value == 0:
                 out.append(f"'{r.name}' can be used at the last cash-flow year ({last:g}), when "
-                           f"nothing is left of the project (no terminal value): its {what} "
-                           "there are collected for giving up nothing. End the window before "
-                           f"year {last:g} unless the {what} are truly available then.")
+                           f"nothing is left of the project (no terminal value): using it there "
+                           f"collects its {what} for giving up nothing. End the window before "
+                           f"year {last:g} unless the {what} can truly be had then.")
             else:
                 tv = " (if any)" if terminal_value is None else f" ({terminal_value:,.4g})"
                 share = r.terminal_share()

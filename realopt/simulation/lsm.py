@@ -232,10 +232,10 @@ class Problem:
             if s.abandoned or not s.invested:
                 out.append(StateFlow("", 0.0, 0.0, 0.0))
                 continue
-            mult = 1.0
+            mult = 1.0                  # one-shot rights used so far: the type's multiplier
             for r in graph.rights:
-                if r.name in s.used:
-                    mult *= (1.0 + r.scale) if r.kind == "expand" else (1.0 - r.scale)
+                if not r.modal:
+                    mult *= r.scale_fixed(s.used, None)[0]
             current = dict(zip([r.name for r in sub_switches], s.modes))
             scale, fixed, own = 1.0, 0.0, []
             for sw in self.switches:

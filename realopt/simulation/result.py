@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -66,6 +66,9 @@ class DriverMap:
     y_values: np.ndarray
     codes: np.ndarray
     others: dict
+    change: float | None = None     # the share of the plane whose best action changes between
+    #                                 this date and an adjacent decision date, which chose it
+    #                                 (None: the first decision date, or every date is shown)
 
 
 @dataclass(frozen=True)
@@ -132,6 +135,7 @@ class SimulationAppraisal:
     cash_flow_value: float | None = None      # risk-neutral value of the file's plain flows
     cash_flow_fan: dict = field(default_factory=dict)  # percentile -> array at fan_years (real
     #                                         world; money per year; NaN where no flow is paid)
+    today_choices: dict | None = None         # appraise(today=True): see _today_choices
 
     @property
     def present_value_stderr(self) -> float:
@@ -196,8 +200,8 @@ class SimulationAppraisal:
         def num(x):
             return "" if x is None else f"{x:,.2f}"
 
-        def pm(x, e):
-            return f"{x:,.2f} +- {e:,.2f}"
+        def pm(x, e):          # a value computed in closed form has no sampling error
+            return f"{x:,.2f} (exact)" if e == 0 else f"{x:,.2f} +- {e:,.2f}"
 
         labels = [f"{r.name} ({r.type})" for r in self.rights]
         w = min(max([46] + [len(s) for s in labels]), width - 44)
@@ -339,8 +343,9 @@ def plan(project: Project) -> SimPlan:
     seconds = 0.3 + n * solves * prob.T * (S + terms) * 9.5e-9 + n * prob.T * max(d, 1) * 2e-8
     if ub:
         seconds += ub.seconds_estimate
-    warnings = list(project.warnings) + structure_warnings(
-        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0)
+    warnings = list(project.warnings) + structure_warnings(     # the same words as appraise
+        graph, float(prob.model.years[1]), max(r.window[1] for r in rights) if rights else 0.0,
+        terminal_value=prob.tv)
     return SimPlan(paths=n, dates=prob.T, decision_dates=dec, horizon=float(prob.times[-1]),
                    drivers=d, regression_terms=terms, states=S, solves=solves,
                    memory_bytes=memory, seconds_estimate=seconds, warnings=tuple(warnings),
@@ -478,8 +483,11 @@ def shapley_weights(n: int) -> list[float]:
     return [math.factorial(s) * math.factorial(n - s - 1) / math.factorial(n) for s in range(n)]
 
 
-def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
-    """Value every right of ``project`` by least-squares Monte Carlo; see the module doc."""
+def appraise(project: Project, *, progress: bool = True,
+             today: bool = False) -> SimulationAppraisal:
+    """Value every right of ``project`` by least-squares Monte Carlo; see the module doc.
+    ``today``: also value the decisions open today (``today_choices``, for realopt.portfolio;
+    one more forward pass, nothing else changes)."""
     t_start = time.monotonic()
     _check_project(project)
     spec = project.simulation
@@ -563,8 +571,15 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
     static, se_pv = estimate(base, base_c)
     if base_cv is not None:
         static, se_pv = float(exact) - investment_pv, 0.0
-    expanded, se_full = estimate(v_full, c_full)
+    _, se_full = estimate(v_full, c_full)
     flex, se_flex = estimate(v_full - base, c_full - base_c)
+    # the table adds up exactly: expanded = static + flexibility (the pathwise difference is the
+    # sharper estimate); with an exact static NPV its standard error is the flexibility's
+    expanded = static + flex
+    if base_cv is not None:
+        se_full = se_flex
+    choices = (_today_choices(prob, pol, x_val, v_full, estimate, (expanded, se_full))
+               if today else None)
     present_value = static + investment_pv
 
     plain_value = _plain_value(prob, dyn, x_val, anti)
@@ -616,7 +631,58 @@ def appraise(project: Project, *, progress: bool = True) -> SimulationAppraisal:
         warnings=tuple(warnings), state_graph=graph, driver_maps=tuple(maps),
         fan_years=fan_years, fan=fan, cash_flow_fan=cf_fan,
         base=base_description(rights, "the cash flows of the drivers as given"),
-        headline_warnings=tuple(headline), cash_flow_value=plain_value)
+        headline_warnings=tuple(headline), cash_flow_value=plain_value,
+        today_choices=choices)
+
+
+def _today_choices(prob, pol, x_val, v_full, estimate, full_estimate) -> dict:
+    """The decisions open today, valued on the valuing paths with the fitted policy of every
+    right (money valued today; standard errors with the appraisal's own control variates).
+
+    * ``commit_now_value``: the paths start today in the invested state the commitment reaches
+      (its own decisions today first, as on the lattice), then follow the policy; less the
+      commitment's cost today (the investment's present value). Without a defer right the
+      project is committed today: the expanded NPV itself.
+    * ``keep_option_value``: the paths stay uncommitted today (no commitment at date 0), then
+      follow the policy (which may commit later); None without a defer right.
+    * ``commit_minus_keep_se``: standard error of the pathwise difference of the two.
+
+    The drivers are known today, so the fitted policy takes one decision today on every path:
+    the expanded NPV's pathwise values are exactly those of that decision (reused, not
+    recomputed, and its estimate is the appraisal's own ``full_estimate``: (expanded NPV, its
+    standard error)); the other decision takes one more forward pass. The policy is handed a start
+    state (``graph.initial``) or today's open edges without the commitment; lsm is unchanged."""
+
+    from ..rights import Action
+
+    graph = pol.graph
+    s0 = graph.initial
+    full, full_se = full_estimate
+    if graph.states[s0].invested:
+        return {"commit_now_value": full, "commit_now_se": full_se, "keep_option_value": None,
+                "keep_option_se": None, "commit_minus_keep_se": None}
+    e = next(e for e in graph.edges if e.source == s0 and e.action == Action.COMMIT)
+    committed = False
+    if 0 in pol.open_edges:
+        new, _, _ = lsm.decide(prob, pol, 0, x_val[0][:, :1], np.array([s0]))
+        committed = int(new[0]) != s0
+    if committed:
+        commit = v_full
+        held = {k: v for k, v in pol.open_edges.items() if k != 0}
+        rest = [i for i in pol.open_edges[0] if graph.edges[i].source != s0]
+        if rest:
+            held[0] = rest
+        keep = lsm.run(prob, replace(pol, open_edges=held), x_val).values
+    else:
+        keep = v_full
+        n = x_val.shape[-1]
+        cost = np.broadcast_to(prob.money(e, 0, x_val[0]), (n,)) * prob.disc[0]
+        start = replace(pol, graph=replace(graph, initial=e.target))
+        commit = lsm.run(prob, start, x_val).values + cost
+    c, c_se = (full, full_se) if commit is v_full else estimate(commit)
+    k, k_se = (full, full_se) if keep is v_full else estimate(keep)
+    return {"commit_now_value": c, "commit_now_se": c_se, "keep_option_value": k,
+            "keep_option_se": k_se, "commit_minus_keep_se": estimate(commit - keep)[1]}
 
 
 def _upper_bound(prob, pol, dyn, spec, anti, investment_pv, expanded, flex, prog) -> dict:
@@ -820,12 +886,32 @@ def _rules(prob, pol, x_fit, stats, spec):
                                                    _action(graph, graph.edges[e_id]), prob.names[j],
                                                    a, b, never))
                 cf_fit.append((s, k, eids))
-        thresholds[r.name] = tuple(sorted(thr, key=lambda t: t.year))
+        thresholds[r.name] = tuple(sorted(_one_sided(thr), key=lambda t: t.year))
         cf_rules[r.name] = _cash_flow_rule(prob, pol, x_fit, cf_fit)
     influence = {}
     if len(cols) >= 2:
         maps = _maps(prob, pol, med, lo, hi, spec)
     return thresholds, maps, cf_rules, influence
+
+
+def _one_sided(thr: list) -> list:
+    """Each (state, action)'s thresholds with the tail bound of a few bands dropped: where the
+    rule is one-sided ("above" or "below") at most dates, a band at the other dates has its far
+    bound in the tail of the paths, where the regression is fitted on few of them; that bound
+    describes the fit, not the decision a reader can use. The fitted policy (and so every value)
+    is unchanged; only the stated rule reads one way."""
+    from dataclasses import replace
+
+    out = []
+    for key in dict.fromkeys((t.state, t.action) for t in thr):
+        ts = [t for t in thr if (t.state, t.action) == key]
+        side = threshold_side(ts)
+        if side == "above":
+            ts = [replace(t, upper=None) if t.lower is not None else t for t in ts]
+        elif side == "below":
+            ts = [replace(t, lower=None) if t.upper is not None else t for t in ts]
+        out += ts
+    return out
 
 
 def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
@@ -877,7 +963,16 @@ def _cash_flow_rule(prob, pol, x_fit, cases, limit=24, agree=0.97):
     return out
 
 
+MAP_DATES = ("the first decision date, then the dates where the fitted policy changes most "
+             "between consecutive decision dates (the largest share of the plane whose best "
+             "action changes), each change shown at whichever of its two dates has more of "
+             "the plane in an action")
+
+
 def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
+    """Decision maps of each state with a choice at up to ``n_dates`` dates (:func:`_map_dates`),
+    in the plane of two drivers (``map_drivers`` or the two the gains depend on most), the
+    others at their median; ``size`` x ``size`` points between the 1% and 99% points."""
     graph = pol.graph
     cols = prob.basis.cols
     names = prob.names
@@ -900,30 +995,90 @@ def _maps(prob, pol, med, lo, hi, spec, n_dates=4, size=61):
         ks = [k for k in dates if any(graph.edges[e].source == s for e in pol.open_edges[k])]
         if not ks:
             continue
-        pick = sorted({ks[int(i)] for i in np.round(np.linspace(0, len(ks) - 1,
-                                                                min(n_dates, len(ks))))})
+        pick, change = _map_dates(prob, pol, s, ks, a, b, med, lo, hi, n_dates)
         for k in pick:
-            xs = np.linspace(lo[k][a], hi[k][a], size)
-            ys = np.linspace(lo[k][b], hi[k][b], size)
-            gx, gy = np.meshgrid(xs, ys)
-            xg = np.repeat(med[k][:, None], size * size, axis=1)
-            xg[a], xg[b] = gx.ravel(), gy.ravel()
-            gains = _gains(prob, pol, k, s, xg)
-            eids = list(gains)
-            best = np.zeros(size * size)
-            code = np.zeros(size * size, dtype=np.int16)
-            for c, e_id in enumerate(eids, start=1):
-                better = gains[e_id] > best
-                best = np.where(better, gains[e_id], best)
-                code = np.where(better, c, code)
-            labels = ("carry on" if graph.states[s].invested else "wait",) + tuple(
-                f"{graph.edges[e].right}: {_action(graph, graph.edges[e])}" for e in eids)
-            out.append(DriverMap(state=graph.states[s].label, year=float(prob.times[k]),
-                                 actions=labels, x_driver=names[a], y_driver=names[b],
-                                 x_values=xs, y_values=ys, codes=code.reshape(size, size),
-                                 others={names[j]: float(med[k][j]) for j in range(len(names))
-                                         if j not in (a, b)}))
+            out.append(replace(_map_at(prob, pol, s, k, a, b, med, lo, hi, size),
+                               change=change.get(k)))
     return out
+
+
+def _map_at(prob, pol, s, k, a, b, med, lo, hi, size) -> DriverMap:
+    """The best action from state s at date k on a ``size`` x ``size`` grid of drivers a and b
+    between their 1% and 99% points on the fitting paths, the others at their median."""
+    graph = pol.graph
+    names = prob.names
+    xs = np.linspace(lo[k][a], hi[k][a], size)
+    ys = np.linspace(lo[k][b], hi[k][b], size)
+    gx, gy = np.meshgrid(xs, ys)
+    xg = np.repeat(med[k][:, None], size * size, axis=1)
+    xg[a], xg[b] = gx.ravel(), gy.ravel()
+    gains = _gains(prob, pol, k, s, xg)
+    eids = list(gains)
+    best = np.zeros(size * size)
+    code = np.zeros(size * size, dtype=np.int16)
+    for c, e_id in enumerate(eids, start=1):
+        better = gains[e_id] > best
+        best = np.where(better, gains[e_id], best)
+        code = np.where(better, c, code)
+    labels = ("carry on" if graph.states[s].invested else "wait",) + tuple(
+        f"{graph.edges[e].right}: {_action(graph, graph.edges[e])}" for e in eids)
+    return DriverMap(state=graph.states[s].label, year=float(prob.times[k]),
+                     actions=labels, x_driver=names[a], y_driver=names[b],
+                     x_values=xs, y_values=ys, codes=code.reshape(size, size),
+                     others={names[j]: float(med[k][j]) for j in range(len(names))
+                             if j not in (a, b)})
+
+
+def _map_dates(prob, pol, s, ks, a, b, med, lo, hi, n_dates, size=21):
+    """(dates, {date: share changed}) of the maps of state s among its decision dates ``ks``
+    (indices of ``prob.times``, ascending): the first, then the dates of the ``n_dates - 1``
+    largest changes of the fitted policy between consecutive decision dates, in date order.
+
+    A change is the share of the plane whose best action differs between two consecutive dates,
+    on one ``size`` x ``size`` grid of drivers a and b spanning every date's 1%-99% box (the
+    others at each date's median), counting the points inside both dates' boxes (outside its
+    box a date's fit is held at its edge). Each change is shown by the one of its two dates
+    with more of the plane in an action (so a window that opens, or a rule used just before a
+    cash-flow date, is shown where it is used; ties: the later date); a date's score is its
+    largest change, and ties go to the earlier date. Without enough changes, evenly spaced
+    dates fill the rest."""
+    if len(ks) <= n_dates:
+        return list(ks), {}
+    xs = np.linspace(min(lo[k][a] for k in ks), max(hi[k][a] for k in ks), size)
+    ys = np.linspace(min(lo[k][b] for k in ks), max(hi[k][b] for k in ks), size)
+    gx, gy = (v.ravel() for v in np.meshgrid(xs, ys))
+    codes, boxes = [], []
+    for k in ks:
+        xg = np.repeat(med[k][:, None], gx.size, axis=1)
+        xg[a], xg[b] = gx, gy
+        best = np.zeros(gx.size)
+        code = np.full(gx.size, -1, dtype=np.int64)      # -1: carry on / wait
+        for e_id, g in _gains(prob, pol, k, s, xg).items():
+            better = g > best
+            best = np.where(better, g, best)
+            code = np.where(better, e_id, code)
+        codes.append(code)
+        boxes.append((gx >= lo[k][a]) & (gx <= hi[k][a]) & (gy >= lo[k][b]) & (gy <= hi[k][b]))
+    score: dict = {}
+    for i in range(1, len(ks)):
+        both = boxes[i] & boxes[i - 1]
+        if not both.any():
+            continue
+        moved = float((codes[i][both] != codes[i - 1][both]).mean())
+        if moved <= 0:
+            continue
+        used = [float((codes[j][both] >= 0).mean()) for j in (i - 1, i)]
+        k = ks[i] if used[1] >= used[0] else ks[i - 1]
+        score[k] = max(score.get(k, 0.0), moved)
+    ranked = sorted((k for k in score if k != ks[0]), key=lambda k: (-score[k], k))
+    pick = [ks[0]] + ranked[: n_dates - 1]
+    even = [ks[int(i)] for i in np.round(np.linspace(0, len(ks) - 1, n_dates))]
+    for k in even + list(ks):                        # too few changes: evenly spaced dates
+        if len(pick) >= n_dates:
+            break
+        if k not in pick:
+            pick.append(k)
+    return sorted(pick), score
 
 
 def _sample(T: int, limit: int = 240) -> np.ndarray:
@@ -987,6 +1142,16 @@ def _what(r) -> str:
     return r.what("{:,.2f}")
 
 
+def _sig(x: float, digits: int = 4) -> str:
+    """``x`` to ``digits`` significant figures in plain notation with thousands separators
+    (15,630 rather than 1.563e+04: a driver's price reads as a price)."""
+    if x == 0 or not math.isfinite(x):
+        return f"{x:g}"
+    r = round(x, digits - 1 - math.floor(math.log10(abs(x))))
+    d = digits - 1 - math.floor(math.log10(abs(r)))      # 999.96 rounds up to 1,000
+    return f"{r:,.{max(d, 0)}f}"
+
+
 def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> str:
     head = f"{r.name}: {_what(r)} {_when(r)}"
     tail = f"; chance of use (real-world): {use_max:.0%} at its highest, {use_end:.0%} at year " \
@@ -1011,14 +1176,14 @@ def _rule_text(r, thr, side, cf_rule, maps, fmt, use_end, use_max, horizon) -> s
                 drv = ts[0].driver
                 if be and len(be) >= len(ab):
                     f, l = be[0], be[-1]
-                    txt = f"{action} if {drv} falls below {f.upper:,.4g} (year {f.year:.3g})"
+                    txt = f"{action} if {drv} falls below {_sig(f.upper)} (year {f.year:.3g})"
                     if l is not f:
-                        txt += f", {l.upper:,.4g} by year {l.year:.3g}"
+                        txt += f", {_sig(l.upper)} by year {l.year:.3g}"
                 elif ab:
                     f, l = ab[0], ab[-1]
-                    txt = f"{action} once {drv} exceeds {f.lower:,.4g} (year {f.year:.3g})"
+                    txt = f"{action} once {drv} exceeds {_sig(f.lower)} (year {f.year:.3g})"
                     if l is not f:
-                        txt += f", {l.lower:,.4g} by year {l.year:.3g}"
+                        txt += f", {_sig(l.lower)} by year {l.year:.3g}"
                 else:
                     txt = f"{action} at most {drv} values"
                 parts.append(txt)
