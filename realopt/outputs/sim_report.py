@@ -596,13 +596,14 @@ def write_pdf(a, f: Fmt, pngs, path: Path, sens=None) -> list:
         lines += textwrap.wrap(f"- {r.rule}", 95)
     lines += [""] + textwrap.wrap(dcf_sentence(a, f), 95) + [""]
     if sens is not None and sens.rows:
-        lines += [f"Sensitivity (moves: {sens.describe_moves()}):"[:95]]
-        lines += [f"  {'input moved (down / up)':<44}{'expanded NPV down':>18}{'up':>18}"
-                  f"{'flexibility down':>18}{'up':>18}"[:95]]
+        lines += textwrap.wrap("Sensitivity: each input moved down / up, the values with +- one "
+                               "standard error of the difference to the base:", 95)
         for label, v in tornado_cells(sens):
-            lines += [f"  {label[:42]:<44}" + "".join(
-                f"{f.money(v[k]):>10} +-{f.money(v[k + 1]):>5}" for k in (0, 2, 4, 6))]
-        lines += textwrap.wrap(tornado_caption(sens, a, f), 95) + [""]
+            pm = [f"{f.money(v[k])} +- {f.money(v[k + 1])}" for k in range(0, 8, 2)]
+            lines += textwrap.wrap(label, 93, initial_indent="  ", subsequent_indent="    ")
+            lines += [f"      expanded NPV {pm[0]:>17} / {pm[1]:<17}  flexibility "
+                      f"{pm[2]:>17} / {pm[3]}"]
+        lines += [""] + textwrap.wrap(tornado_caption(sens, a, f), 95) + [""]
     for x in sens_notes(sens, a):
         lines += textwrap.wrap(x, 95)
     lines += textwrap.wrap(sim_sentence(a), 95)
