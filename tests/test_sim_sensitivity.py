@@ -172,11 +172,27 @@ rights:
      window: [0, 8]}
 """
 
+ONE_DRIVER = """
+project: {name: One-driver plant, currency: EUR, unit: million}
+valuation: simulation
+simulation: {paths: 600, seed: 2}
+market: {risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.08}
+underlying:
+  years: [1, 10]
+  drivers:
+    X: {process: gbm, start: 10, drift: 0.08, volatility: 0.3, risk_neutral: {drift: 0.05}}
+  cash_flow: X - 12
+investment: {cost: 85}
+rights:
+  - {name: Sell, type: abandon, salvage: 55, window: [1, 9], exercise: bermudan,
+     dates: [1, 2, 3, 4, 5, 6, 7, 8, 9]}
+"""
+
 TEXTS = {"put": PUT.format(paths=800, extra=""),
          "put with upper bound": PUT.format(paths=800, extra=", upper_bound: {paths: 50, "
                                             "inner: 5}"),
          "exchange": EXCHANGE, "graph": GRAPH, "formula": FORMULA, "spread": SPREAD,
-         "schedules": SCHEDULES, "kiln": KILN}
+         "schedules": SCHEDULES, "kiln": KILN, "one driver": ONE_DRIVER}
 
 
 def river(paths=1000, spy=2):
@@ -199,8 +215,14 @@ def check_round_trip(p):
     return a
 
 
-def test_the_demo_and_the_test_projects_round_trip_exactly():
-    projects = [river()] + [loads(t, source=f"{k}.yaml") for k, t in TEXTS.items()]
+def test_the_demo_and_the_test_projects_round_trip_exactly(tmp_path):
+    # the projects of tests/test_simulation.py and tests/test_simulation_report.py (at fewer
+    # paths), each loaded from a file
+    projects = [river()]
+    for k, text in TEXTS.items():
+        f = tmp_path / f"{k.replace(' ', '_')}.yaml"
+        f.write_text(text)
+        projects.append(realopt.load_project(f))
     for p in projects:
         assert p.valuation == "simulation"
         check_round_trip(p)
@@ -354,8 +376,12 @@ def test_each_move_sets_what_it_names():
 def test_zero_move_gives_the_base_exactly(workers):
     p = river()
     a = realopt.appraise(p, progress=False)
+    copier = S.Copier(p)
+    todo = SS.cases(p, ZERO)[0]
+    for c in todo:                        # a zero move is the project itself, field for field
+        assert S._same(copier(c.low), p) and S._same(copier(c.high), p), c.input
     s = SS.analyse(a, ZERO, workers=workers)
-    assert s is not None and len(s.rows) == len(SS.cases(p, ZERO)[0]) >= 12
+    assert s is not None and len(s.rows) == len(todo) >= 12
     for r in s.rows:
         assert r.expanded_low == r.expanded_high == s.base_expanded, r.input
         assert r.flexibility_low == r.flexibility_high == s.base_flexibility, r.input
@@ -520,3 +546,22 @@ def test_steps_per_year_in_a_sweep_sets_the_simulation_key():
     projects = validate_points(args, varies, grid(varies), [])
     assert [q.simulation.steps_per_year for q in projects] == [6, 6]
     assert all(q.warnings == () for q in projects)
+
+
+def test_a_project_no_file_can_state_gets_no_tornado_and_says_why(tmp_path):
+    from realopt.model import Schedule
+    from realopt.outputs.report import write_report
+
+    p = loads(ONE_DRIVER, source="plant.yaml")
+    sell = p.rights[0]
+    odd = replace(p, rights=(replace(sell, salvage=Schedule(points=((0.0, 55.0),), today=50.0)),),
+                  origin=None)                  # `today` is set by the valuation, never a file
+    assert S.Copier(odd).route is None
+    a = realopt.appraise(odd, progress=False)
+    assert SS.analyse(a) is None
+    write_report(a, tmp_path / "rep", dpi=72)
+    md = (tmp_path / "rep" / "report.md").read_text(encoding="utf-8")
+    assert "No sensitivity is computed: moved copies of the project are made by the project " \
+           "loader" in md
+    assert not (tmp_path / "rep" / "figures" / "tornado.png").exists()
+    assert not (tmp_path / "rep" / "tables" / "tornado.csv").exists()
