@@ -43,7 +43,7 @@ from ..errors import RealoptError
 from ..model import Project
 from .sensitivity import DEFAULT_MOVES, Case, Copier, Moves, _investment, _pct
 
-TORNADO_WORK = 4.5e8        # copies x dates x paths x (states + regression terms) allowed
+TORNADO_WORK = 2.25e8       # copies x dates x paths x (states + regression terms) allowed
 PATH_DIVISORS = (1, 2, 4, 8, 16)
 
 
