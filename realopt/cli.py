@@ -76,25 +76,41 @@ def add_project_options(parser: argparse.ArgumentParser) -> None:
              "(a right by its name or its index); VALUE is read as YAML; repeatable")
     parser.add_argument(
         "--steps-per-year", metavar="N", type=_positive_int,
-        help="lattice steps per year (same as --set lattice.steps_per_year=N); more steps are "
-             "more accurate and slower")
+        help="lattice steps per year (same as --set lattice.steps_per_year=N); for a project "
+             "with valuation: simulation, the decision dates a year inside american windows "
+             "(same as --set simulation.steps_per_year=N); more steps are more accurate and "
+             "slower")
     parser.add_argument(
         "--allow-large", action="store_true",
         help="run even when the estimated memory or time exceeds this machine's means")
 
 
+def steps_key(data) -> str:
+    """The key --steps-per-year sets in a raw project tree (after any --set): the simulation's
+    decision dates a year under ``valuation: simulation``, else the lattice's steps a year."""
+    simulation = isinstance(data, dict) and data.get("valuation") == "simulation"
+    return "simulation.steps_per_year" if simulation else "lattice.steps_per_year"
+
+
 def load_from_args(args, path):
-    """Load ``path`` with the command's --set and --steps-per-year overrides applied."""
-    from .project import load_project, parse_value
+    """Load ``path`` with the command's --set and --steps-per-year overrides applied (the
+    latter after the former, on the key :func:`steps_key` names)."""
+    from pathlib import Path
+
+    from .project import apply_overrides, build_project, parse_value, read_tree
 
     overrides, labels = {}, {}
     for key, text in getattr(args, "overrides", []) or []:
         overrides[key] = parse_value(text, key)
         labels[key] = f"--set {key}"
-    if getattr(args, "steps_per_year", None):
-        overrides["lattice.steps_per_year"] = args.steps_per_year
-        labels["lattice.steps_per_year"] = f"--steps-per-year {args.steps_per_year}"
-    return load_project(path, overrides, labels=labels)
+    tree = read_tree(path)
+    if overrides:
+        apply_overrides(tree, overrides, labels)
+    n = getattr(args, "steps_per_year", None)
+    if n:
+        key = steps_key(tree.data)
+        apply_overrides(tree, {key: n}, {key: f"--steps-per-year {n}"})
+    return build_project(tree, Path(path).resolve().parent)
 
 
 def available_memory() -> int | None:

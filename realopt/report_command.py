@@ -12,17 +12,18 @@ from pathlib import Path
 
 
 def _moves(text: str):
-    """--moves volatility=0.1,rates=0.005,relative=0.25 -> Moves."""
+    """--moves volatility=0.1,rates=0.005,relative=0.25 -> Moves (and, for a simulation
+    result, level=X and correlation=X)."""
     from .outputs.sensitivity import DEFAULT_MOVES, Moves
 
     values = {}
     for part in text.split(","):
         key, sep, val = part.partition("=")
         key = key.strip()
-        if not sep or key not in ("volatility", "rates", "relative"):
+        if not sep or key not in ("volatility", "rates", "relative", "level", "correlation"):
             raise argparse.ArgumentTypeError(
-                f"expected volatility=X, rates=X and/or relative=X separated by commas (e.g. "
-                f"volatility=0.1,relative=0.25), got '{text}'")
+                f"expected volatility=X, rates=X, relative=X, level=X and/or correlation=X "
+                f"separated by commas (e.g. volatility=0.1,relative=0.25), got '{text}'")
         try:
             x = float(val)
         except ValueError:
@@ -65,7 +66,9 @@ def register(sub) -> None:
     p.add_argument("--moves", metavar="KEY=X,...", type=_moves,
                    help="sensitivity moves: volatility (absolute, default 0.05), rates "
                         "(absolute, default 0.01), relative (costs, cash flows, salvage and "
-                        "scale inputs, default 0.20)")
+                        "scale inputs, default 0.20); for valuation: simulation also level "
+                        "(the drivers' levels, relative, default 0.10) and correlation "
+                        "(absolute, default 0.1)")
     p.add_argument("--sweep", metavar="SWEEP_DIR",
                    help="also include the figure of a finished `realopt sweep` folder")
     add_project_options(p)

@@ -26,9 +26,13 @@ def validate_points(args, varies, points, fixed):
     for key, text in fixed:
         base[key] = parse_value(text, key)
         labels[key] = f"--set {key}"
-    if getattr(args, "steps_per_year", None):
-        base["lattice.steps_per_year"] = args.steps_per_year
-        labels["lattice.steps_per_year"] = f"--steps-per-year {args.steps_per_year}"
+    steps = getattr(args, "steps_per_year", None)
+    if steps:                 # the lattice's or the simulation's key, as realopt.cli's
+        from .cli import steps_key
+        from .project import read_tree
+
+        data = read_tree(args.file).data
+        own = data.get("valuation") if isinstance(data, dict) else None
     parsed = {}
     projects, bad = [], []
     for point in points:
@@ -38,6 +42,10 @@ def validate_points(args, varies, points, fixed):
                 parsed[v.key, text] = parse_value(text, v.key)
             over[v.key] = parsed[v.key, text]
             lab[v.key] = f"--vary {v.key}={text}"
+        if steps:
+            key = steps_key({"valuation": over.get("valuation", own)})
+            over[key] = steps
+            lab[key] = f"--steps-per-year {steps}"
         try:
             project = resolver(load_project(args.file, over, labels=lab))
             if project.valuation == "simulation":       # its own plan and guard

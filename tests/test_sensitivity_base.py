@@ -38,7 +38,7 @@ def _files():
     users = ROOT / "tests" / "user_projects"
     if users.is_dir():                      # added by another change; absent is fine
         out += sorted(users.rglob("*.yaml")) + sorted(users.rglob("*.yml"))
-    # the tornado does not cover valuation: simulation yet (realopt.simulation)
+    # valuation: simulation has its own tornado and checks (tests/test_sim_sensitivity.py)
     return [f for f in out if "\nvaluation: simulation" not in f.read_text()]
 
 

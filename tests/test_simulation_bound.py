@@ -229,3 +229,30 @@ def test_check_and_the_guard_count_the_bound():
     smaller = int(msg.split("simulation.upper_bound.paths=")[1].split()[0])
     assert 10 <= smaller < 1000000
     assert guard_message(p, pl, 8e9) is None
+
+
+def test_bound_with_taxed_flows_between_payment_dates():
+    # found at merge: a taxed formula (simulated on the inner paths) at a decision date with no
+    # payment (yearly flows, quarterly decisions) broke the control fit; the bound must run and
+    # lie above the lower estimate within three standard errors (duality: Andersen & Broadie 2004)
+    p = loads("""
+project: {name: Taxed kiln}
+valuation: simulation
+simulation: {paths: 2000, seed: 3, steps_per_year: 4, basis: 2, upper_bound: {paths: 200, inner: 8}}
+market: {risk_free_rate: 0.03, discount_rate: 0.08}
+underlying:
+  years: [1, 6]
+  drivers:
+    price: {process: gbm, start: 50, drift: 0.01, volatility: 0.3, risk_neutral: {risk_premium: 0.2}}
+  cash_flow: 0.4 * price - 18
+  tax_rate: 0.25
+investment: {cost: 10}
+rights:
+  - {name: Shut the kiln, type: shutdown, cost: 0.5, restart_cost: 1.0, maintenance: 0.8,
+     window: [0, 6]}
+""")
+    a = realopt.appraise(p)
+    ub = a.upper_bound
+    assert ub["value"] >= a.expanded_npv - 3 * (ub["standard_error"] + a.standard_error[
+        "expanded_npv"])
+    assert ub["value"] < a.expanded_npv + 0.2 * a.flexibility_value + 3 * ub["standard_error"]

@@ -33,9 +33,11 @@ def regenerate(project_file: Path, out_root: Path, dpi: int) -> list[Path]:
     a = realopt.appraise(realopt.load_project(project_file))
     if getattr(a, "method", "") == "simulation":        # the simulation report's figures
         from .sim_report import draw
+        from .sim_sensitivity import start
         from .tables import Fmt
 
-        pngs = draw(a, Fmt(a.project), dpi)
+        with start(a) as tornado:                       # its copies run while others draw
+            pngs = draw(a, Fmt(a.project), dpi, tornado)
         cs = [_Slug(s) for s in pngs]
         drawn = [(pngs[s][0], None) for s in pngs]
     else:

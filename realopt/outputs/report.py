@@ -186,7 +186,7 @@ def _write_all(a, moves, tmp: Path, dpi: int, xlsx, source, extra_charts=()) -> 
     if getattr(a, "method", "") == "simulation":           # drawn from the one result
         from .sim_report import write_all
 
-        return write_all(a, tmp, dpi, xlsx, source, MARKER)
+        return write_all(a, tmp, dpi, xlsx, source, MARKER, moves)
     f = Fmt(a.project)
     with _Drawer(a, moves, dpi) as drawer:
         b = Built(appraisal=a, drawer=drawer, fmt=f, charts=list(drawer.base),

@@ -43,7 +43,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any, Callable
 
 from ..errors import RealoptError
-from ..model import Driver, Project, Right, Underlying
+from ..model import Driver, LatticeSpec, Project, Right, SimulationSpec, Underlying
 from ..rights.contract import CONTRACT_CAP  # noqa: F401  (a moved contraction keeps some)
 from ..rights.raw import schedule_raw as _schedule_raw
 from ..project import DRIVER_FORM_KEYS, Tree, apply_overrides, build_project
@@ -59,11 +59,15 @@ SETTLED = 0.005                   # a grid has settled within 0.5% of the finest
 
 @dataclass(frozen=True)
 class Moves:
-    """Stated moves of the tornado: absolute for volatility and rates, relative for the rest."""
+    """Stated moves of the tornado: absolute for volatility and rates, relative for the rest.
+    ``level`` (relative: the drivers' levels) and ``correlation`` (absolute) move the inputs of
+    a simulation result only (realopt.outputs.sim_sensitivity)."""
 
     volatility: float = 0.05
     rates: float = 0.01
     relative: float = 0.20
+    level: float = 0.10
+    correlation: float = 0.10
 
     def describe(self) -> str:
         return (f"volatility +-{self.volatility * 100:g} points, rates +-{self.rates * 100:g} "
@@ -140,13 +144,35 @@ def _years_raw(pairs) -> dict:
     return {y: v for y, v in pairs}
 
 
+def _risk_neutral_raw(rn) -> dict:
+    """A driver's risk-neutral description as the file writes it (valuation: simulation)."""
+    if rn.kind == "forward":
+        return {"forward": _years_raw(rn.forward)}
+    return {rn.kind: rn.value}
+
+
 def _driver_raw(d: Driver):
     if d.process == "schedule":
         return {"schedule": _schedule_raw(d.schedule)}
     if d.process == "gbm":
-        return {"process": "gbm", "start": d.start, "drift": d.drift, "volatility": d.volatility}
-    return {"process": d.process, "start": d.start, "long_run": d.long_run, "speed": d.speed,
-            "volatility": d.volatility}
+        out = {"process": "gbm", "start": d.start, "drift": d.drift, "volatility": d.volatility}
+    else:
+        out = {"process": d.process, "start": d.start, "long_run": d.long_run, "speed": d.speed,
+               "volatility": d.volatility}
+    if d.risk_neutral is not None:
+        out["risk_neutral"] = _risk_neutral_raw(d.risk_neutral)
+    return out
+
+
+def _simulation_raw(spec: SimulationSpec) -> dict:
+    """The ``simulation:`` block of a project valued on the drivers."""
+    out = {"paths": spec.paths, "seed": spec.seed, "steps_per_year": spec.steps_per_year,
+           "basis": spec.basis, "antithetic": spec.antithetic}
+    if spec.upper_bound_paths:
+        out["upper_bound"] = {"paths": spec.upper_bound_paths, "inner": spec.upper_bound_inner}
+    if spec.map_drivers:
+        out["map_drivers"] = list(spec.map_drivers)
+    return out
 
 
 def _underlying_raw(u: Underlying) -> dict:
@@ -203,6 +229,12 @@ def project_tree(p: Project) -> dict:
                     if lat.explicit else {"steps_per_year": lat.steps_per_year}),
         "rights": [_right_raw(r) for r in p.rights],
     }
+    if p.valuation == "simulation":
+        out["valuation"] = "simulation"
+        if p.simulation is not None:
+            out["simulation"] = _simulation_raw(p.simulation)
+        if lat == LatticeSpec():          # not used there (the loader warns about a lattice)
+            del out["lattice"]
     return out
 
 

@@ -2,8 +2,11 @@
 
 Called by :func:`realopt.outputs.report.write_report` (which owns the atomic temp-folder +
 rename) with a :class:`realopt.simulation.result.SimulationAppraisal`. Every figure and table is
-drawn from the one result object, except the convergence figure: it re-appraises copies of the
-file at paths/16 and paths/4 (same seed, via the sensitivity copier) beside the result itself. Money is in the project's currency
+drawn from the one result object, except the convergence figure (it re-appraises copies of the
+file at paths/16 and paths/4, same seed, via the sensitivity copier, beside the result itself)
+and the tornado (moved copies valued on the same random numbers as a base valued again with
+them: :mod:`realopt.outputs.sim_sensitivity`, started first so that its copies run in worker
+processes while the other figures are drawn). Money is in the project's currency
 and unit, valued today (risk-neutral on the drivers); years from today; driver values in the
 units the project file gives them (the file does not name the units). Every number shown is a
 field of the result, formatted by :class:`realopt.outputs.tables.Fmt`; numbered HTML cells carry
@@ -25,18 +28,17 @@ from ..rights.registry import RIGHT_TYPES
 from ..simulation.result import CAUTION_SIMULATION, MAP_DATES
 from .tables import Fmt
 
-NOT_DRAWN = ("The sensitivity tornado and the convergence figure are not drawn for simulation "
-             "results yet.")
-NOT_DRAWN_TORNADO = "The sensitivity tornado is not drawn for simulation results yet."
 CONVERGENCE_FRACTIONS = (16, 4)     # re-appraise at paths/16 and paths/4 beside the result
 FIGURES = ("value_bridge", "decision_maps", "thresholds", "chance_of_use", "fan",
-           "cash_flow_fan", "convergence")
+           "cash_flow_fan", "tornado", "convergence")
 TITLES = {"value_bridge": "Value bridge (error bars: one standard error)",
           "decision_maps": "Decision maps in the plane of two drivers",
           "thresholds": "Exercise thresholds in the driver's units",
           "chance_of_use": "Chance of use",
           "fan": "Fan of the drivers (real-world paths)",
           "cash_flow_fan": "Fan of the base cash flow per year (real-world paths)",
+          "tornado": "Sensitivity of the expanded NPV and the flexibility value "
+                     "(whiskers: one standard error of the difference)",
           "convergence": "Expanded NPV against paths (error bars: one standard error)"}
 CAPTIONS = {"cash_flow_fan": (
     "Percentiles 5, 25, 50, 75 and 95 of the yearly cash flow of the project as given (no "
@@ -50,7 +52,7 @@ CAPTIONS = {"cash_flow_fan": (
     "just after a payment earns nothing until the next one, so a threshold is highest just "
     "after a payment date and falls towards the next: the saw-tooth is the timing of the flows, "
     "not noise. Where the rule is one-sided at most dates, a far bound at a few dates in the "
-    "tail of the paths (where the regression rests on few of them) is not drawn."),
+    "tail of the paths (where the regression rests on few of them) is left out."),
     "chance_of_use": (
     "Solid lines follow the fitted policy on real-world paths (the chances to expect), dashed "
     "lines on the risk-neutral paths that value it. A switch's shares count the paths in each "
@@ -69,9 +71,97 @@ CAPTIONS["decision_maps"] = (
     + MAP_DATES + "; a date whose drivers are known (today) has no plane and is left out.")
 
 
-def not_drawn(pngs) -> str:
-    """The one-line note on the figures a simulation report leaves out."""
-    return NOT_DRAWN_TORNADO if "convergence" in pngs else NOT_DRAWN
+def tornado_caption(s, a, f: Fmt) -> str:
+    """What to read off the tornado, with the paths and the base it is measured from."""
+    same = s.paths == s.result_paths
+    return (
+        "Each bar is the expanded NPV (left) or the flexibility value (right) with one input "
+        "moved down (orange) or up (navy, hatched), every other input as in the file; the "
+        "longest bars mark the inputs the value depends on most. The base and every moved copy "
+        f"are valued with the full set of rights on {s.paths:,} paths (as many again fit the "
+        f"policy, seed {s.seed})"
+        + ("" if same else f", fewer than the result's {s.result_paths:,} to keep the report "
+           "quick, so the base is valued again at those paths")
+        + f": base expanded NPV {f.money(s.base_expanded)} (standard error "
+        f"{f.money(s.base_expanded_se)}), flexibility value {f.money(s.base_flexibility)} "
+        f"(standard error {f.money(s.base_flexibility_se)}); the result itself shows "
+        f"{f.money(a.expanded_npv)}. Every copy draws the same random numbers as the base, so "
+        "each bar is a difference taken path by path, and the whisker at its end is one "
+        "standard error of that difference (the policy is fitted again for each copy; that "
+        "refit adds a little low-biased noise the whisker does not count). A bar shorter than "
+        "about two whiskers is not told apart from no change.")
+
+
+def tornado_table(s) -> pd.DataFrame:
+    """tornado.csv: one row an input, the moved values and the standard errors of their
+    differences to the base, and the base (valued again at the tornado's paths)."""
+    cols = ["input", "low_setting", "high_setting", "expanded_npv_low",
+            "expanded_npv_low_se_of_difference", "expanded_npv_high",
+            "expanded_npv_high_se_of_difference", "flexibility_value_low",
+            "flexibility_value_low_se_of_difference", "flexibility_value_high",
+            "flexibility_value_high_se_of_difference", "paths", "base_expanded_npv",
+            "base_expanded_npv_se", "base_flexibility_value", "base_flexibility_value_se"]
+    rows = [[r.input, r.low_setting, r.high_setting, r.expanded_low, r.expanded_low_se,
+             r.expanded_high, r.expanded_high_se, r.flexibility_low, r.flexibility_low_se,
+             r.flexibility_high, r.flexibility_high_se, s.paths, s.base_expanded,
+             s.base_expanded_se, s.base_flexibility, s.base_flexibility_se] for r in s.rows]
+    return pd.DataFrame(rows, columns=cols)
+
+
+def tornado_cells(s):
+    """(label, [(value, is a standard error)]) of the report's tornado table."""
+    return [(f"{r.input} ({r.low_setting} / {r.high_setting})",
+             [r.expanded_low, r.expanded_low_se, r.expanded_high, r.expanded_high_se,
+              r.flexibility_low, r.flexibility_low_se, r.flexibility_high,
+              r.flexibility_high_se]) for r in s.rows]
+
+
+TORNADO_HEAD = ["Input moved (down / up)", "Expanded NPV down", "+-", "up", "+-",
+                "Flexibility value down", "+-", "up", "+-"]
+
+
+def fig_tornado(s, f: Fmt):
+    """Bars from the base to the moved values, whiskers +- one standard error of the
+    difference at the bar ends; a grey band +- the base's own standard error."""
+    from matplotlib.patches import Patch
+
+    rows = list(s.rows)
+    fig = _fig(max(2.4, 0.36 * len(rows) + 1.3))
+    axes = fig.subplots(1, 2, sharey=True)
+    y = np.arange(len(rows))[::-1]
+    labels = [textwrap_label(f"{r.input} ({r.low_setting} / {r.high_setting})", 34)
+              for r in rows]
+    down, up = "#e3a33b", "#4a6fa5"
+    for ax, base, base_se, key, title in (
+            (axes[0], s.base_expanded, s.base_expanded_se, "expanded", "Expanded NPV"),
+            (axes[1], s.base_flexibility, s.base_flexibility_se, "flexibility",
+             "Flexibility value")):
+        for yy, r in zip(y, rows):
+            lo, hi = getattr(r, f"{key}_low"), getattr(r, f"{key}_high")
+            bars = [(lo, getattr(r, f"{key}_low_se"), {"color": down}),
+                    (hi, getattr(r, f"{key}_high_se"), {"color": up, "hatch": "//",
+                                                         "edgecolor": "white",
+                                                         "linewidth": 0})]
+            bars.sort(key=lambda b: -abs(b[0] - base))     # the shorter bar on top
+            for end, se, look in bars:
+                ax.barh(yy, end - base, left=base, height=0.62, zorder=3, **look)
+            for end, se, _ in bars:
+                if se > 0:
+                    ax.errorbar(end, yy, xerr=se, color="black", capsize=2.5, lw=0.8,
+                                zorder=5)
+        if base_se > 0:
+            ax.axvspan(base - base_se, base + base_se, color="#d9d9d9", zorder=1, lw=0)
+        ax.axvline(base, color="black", linewidth=0.9, zorder=4)
+        ax.set_title(f"{title} (base {f.money(base)})", fontsize=8, loc="left")
+        ax.set_xlabel(f.unit_label, fontsize=7)
+        ax.tick_params(labelsize=6.5)
+    axes[0].set_yticks(y, labels, fontsize=6.5)
+    fig.legend(handles=[Patch(color=down, label="input moved down"),
+                        Patch(facecolor=up, hatch="//", edgecolor="white",
+                              label="input moved up"),
+                        Patch(color="#d9d9d9", label="base +- one standard error")],
+               loc="outside lower right", ncols=3, fontsize=6.5)
+    return fig
 
 
 def convergence(a) -> list | None:
@@ -140,7 +230,7 @@ def right_rows(a):
 INTERACTION = "Interaction between the rights"   # flexibility less the values alone
 
 
-def csv_tables(a) -> dict:
+def csv_tables(a, sens=None) -> dict:
     t = {"value_bridge": pd.DataFrame(value_rows(a),
                                       columns=["item", "value", "standard_error"]),
          "rights": pd.DataFrame(right_rows(a), columns=[
@@ -164,6 +254,8 @@ def csv_tables(a) -> dict:
     t["fan"] = pd.DataFrame(fan)
     t["real_world_dcf"] = pd.DataFrame([a.real_world_dcf])
     t["warnings"] = pd.DataFrame({"warning": list(a.warnings)})
+    if sens is not None:
+        t["tornado"] = tornado_table(sens)
     return t
 
 
@@ -342,16 +434,23 @@ def fig_cash_flow_fan(a):
     return fig
 
 
-def draw(a, f: Fmt, dpi: int) -> dict:
-    """slug -> PNG bytes, each figure drawn once."""
+def draw(a, f: Fmt, dpi: int, tornado=None) -> dict:
+    """slug -> (PNG bytes, figure), each figure drawn once. ``tornado``: the
+    :class:`sim_sensitivity.Pending` tornado (waited for when its figure comes), or None."""
+    sens = [None]
     makers = {"value_bridge": lambda: fig_bridge(a, f), "decision_maps": lambda: fig_maps(a),
               "thresholds": lambda: fig_thresholds(a),
               "chance_of_use": lambda: fig_chance(a), "fan": lambda: fig_fan(a),
               "cash_flow_fan": lambda: fig_cash_flow_fan(a),
+              "tornado": lambda: fig_tornado(sens[0], f),
               "convergence": lambda: fig_convergence(conv, f)}
     conv = convergence(a)
     out = {}
     for slug in FIGURES:
+        if slug == "tornado":
+            sens[0] = tornado.result() if tornado is not None else None
+            if sens[0] is None or not sens[0].rows:
+                continue
         if slug == "decision_maps" and not any(
                 np.ptp(np.asarray(m.x_values)) > 0 for m in a.driver_maps):
             continue
@@ -407,7 +506,7 @@ def _img(png: bytes, alt: str) -> str:
             f'src="data:image/png;base64,{base64.b64encode(png).decode()}"></figure>')
 
 
-def render_html(a, f: Fmt, pngs) -> str:
+def render_html(a, f: Fmt, pngs, sens=None) -> str:
     p = a.project
     h = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>{_e(p.name)}</title>",
          "<style>body{font-family:sans-serif;max-width:60em;margin:auto}"
@@ -447,7 +546,16 @@ def render_html(a, f: Fmt, pngs) -> str:
         h.append(f"<h3>{_e(TITLES[slug])}</h3>{_img(png, TITLES[slug])}")
         if slug in CAPTIONS:
             h.append(f"<p>{_e(CAPTIONS[slug])}</p>")
-    h.append(f"<p>{_e(not_drawn(pngs))}</p><p>{_e(sim_sentence(a))}</p>")
+        if slug == "tornado":
+            h.append(f"<p>{_e(tornado_caption(sens, a, f))}</p>")
+            h.append("<table><tr>" + "".join(f"<th>{_e(x)}</th>" for x in TORNADO_HEAD)
+                     + "</tr>")
+            for label, vals in tornado_cells(sens):
+                h.append(f"<tr><td>{_e(label)}</td>" + "".join(_td(v, f) for v in vals)
+                         + "</tr>")
+            h.append("</table>")
+    h += [f"<p>{_e(x)}</p>" for x in sens_notes(sens, a)]
+    h.append(f"<p>{_e(sim_sentence(a))}</p>")
     if a.warnings:
         h.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{_e(w)}</li>" for w in a.warnings)
                  + "</ul>")
@@ -455,7 +563,7 @@ def render_html(a, f: Fmt, pngs) -> str:
     return "\n".join(h) + "\n"
 
 
-def render_markdown(a, f: Fmt, pngs) -> str:
+def render_markdown(a, f: Fmt, pngs, sens=None) -> str:
     p = a.project
     m = [f"# {p.name}", "", f"> {CAUTION_SIMULATION}", ""]
     m += [f"**Warning:** {w}\n" for w in a.headline_warnings]
@@ -476,14 +584,22 @@ def render_markdown(a, f: Fmt, pngs) -> str:
           "## Figures", ""]
     for s in pngs:
         m += [f"![{TITLES[s]}](figures/{s}.png)\n"] + ([CAPTIONS[s], ""] if s in CAPTIONS else [])
-    m += [not_drawn(pngs), "", sim_sentence(a), ""]
+        if s == "tornado":
+            m += [tornado_caption(sens, a, f), "", "| " + " | ".join(TORNADO_HEAD) + " |",
+                  "|---" + "|---:" * (len(TORNADO_HEAD) - 1) + "|"]
+            m += [f"| {label} | " + " | ".join(f.money(v) for v in vals) + " |"
+                  for label, vals in tornado_cells(sens)]
+            m += [""]
+    for x in sens_notes(sens, a):
+        m += [x, ""]
+    m += [sim_sentence(a), ""]
     if a.warnings:
         m += ["## Warnings", ""] + [f"- {w}" for w in a.warnings] + [""]
     m += [f"> {CAUTION_SIMULATION}", ""]
     return "\n".join(m)
 
 
-def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
+def write_pdf(a, f: Fmt, pngs, path: Path, sens=None) -> list:
     """A4 pages: the text (caution first), one page per figure, the caution last."""
     import textwrap
 
@@ -505,7 +621,18 @@ def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
     for r in a.rights:
         lines += textwrap.wrap(f"- {r.rule}", 95)
     lines += [""] + textwrap.wrap(dcf_sentence(a, f), 95) + [""]
-    lines += textwrap.wrap(not_drawn(pngs), 95) + textwrap.wrap(sim_sentence(a), 95)
+    if sens is not None and sens.rows:
+        lines += textwrap.wrap("Sensitivity: each input moved down / up, the values with +- one "
+                               "standard error of the difference to the base:", 95)
+        for label, v in tornado_cells(sens):
+            pm = [f"{f.money(v[k])} +- {f.money(v[k + 1])}" for k in range(0, 8, 2)]
+            lines += textwrap.wrap(label, 93, initial_indent="  ", subsequent_indent="    ")
+            lines += [f"      expanded NPV {pm[0]:>17} / {pm[1]:<17}  flexibility "
+                      f"{pm[2]:>17} / {pm[3]}"]
+        lines += [""] + textwrap.wrap(tornado_caption(sens, a, f), 95) + [""]
+    for x in sens_notes(sens, a):
+        lines += textwrap.wrap(x, 95)
+    lines += textwrap.wrap(sim_sentence(a), 95)
     with PdfPages(path) as pdf:
         per_page = 72
         for start in range(0, len(lines), per_page):          # text runs on, never cut
@@ -526,23 +653,40 @@ def write_pdf(a, f: Fmt, pngs, path: Path) -> list:
     return pages
 
 
-def write_all(a, tmp: Path, dpi: int, xlsx, source, marker: str) -> None:
-    """Write every file of the simulation report into ``tmp`` (the caller renames it)."""
+def sens_notes(sens, a) -> list[str]:
+    """The sentences beside the tornado: what was not moved, or why there is no tornado."""
+    from .sim_sensitivity import why_not
+
+    if sens is None:
+        return [why_not(a)]
+    out = [f"Moves: {sens.describe_moves()}."] + list(sens.notes)
+    if not sens.rows:
+        out.insert(0, "No tornado is drawn: the project has no input to move.")
+    return out
+
+
+def write_all(a, tmp: Path, dpi: int, xlsx, source, marker: str, moves=None) -> None:
+    """Write every file of the simulation report into ``tmp`` (the caller renames it).
+    ``moves``: the tornado's moves (default :data:`sensitivity.DEFAULT_MOVES`)."""
     from ..jsontext import to_json
+    from .sensitivity import DEFAULT_MOVES
+    from .sim_sensitivity import start
 
     f = Fmt(a.project)
-    pngs = draw(a, f, dpi)
+    with start(a, moves or DEFAULT_MOVES) as pending:   # its copies run while others draw
+        pngs = draw(a, f, dpi, pending)
+        sens = pending.result()
     (tmp / "figures").mkdir()
     for slug, (png, _) in pngs.items():
         (tmp / "figures" / f"{slug}.png").write_bytes(png)
-    pages = write_pdf(a, f, pngs, tmp / "report.pdf")
-    tables = csv_tables(a)
+    pages = write_pdf(a, f, pngs, tmp / "report.pdf", sens)
+    tables = csv_tables(a, sens)
     from .report import write_tables
 
     write_tables(tmp, tables, xlsx)
     (tmp / "results.json").write_text(to_json(a.to_dict()) + "\n", encoding="utf-8")
-    (tmp / "report.html").write_text(render_html(a, f, pngs), encoding="utf-8")
-    (tmp / "report.md").write_text(render_markdown(a, f, pngs), encoding="utf-8")
+    (tmp / "report.html").write_text(render_html(a, f, pngs, sens), encoding="utf-8")
+    (tmp / "report.md").write_text(render_markdown(a, f, pngs, sens), encoding="utf-8")
     manifest = {"realopt": __version__, "project": a.project.name,
                 "source": None if source is None else str(source),
                 "figures": [s + ".png" for s in pngs], "tables": [t + ".csv" for t in tables],

@@ -11,7 +11,7 @@ import numpy as np
 from ..keypaths import describe
 from ..model import Schedule
 from .base import Action, BaseRight
-from .raw import moved
+from .raw import formula_times, moved
 
 _MOVE = re.compile(r"^\s*(.+?)\s*->\s*(.+?)\s*$")
 
@@ -26,9 +26,20 @@ class Mode:
     cash_flow: str | None = None     # own yearly cash-flow formula (valuation: simulation)
 
 
-def modes_raw(modes, k_fixed: float = 1.0, scaled: str | None = None, k_scale: float = 1.0):
-    return {m.name: {"scale": m.scale * k_scale if m.name == scaled else m.scale,
-                     "fixed": m.fixed * k_fixed} for m in modes}
+def modes_raw(modes, k_fixed: float = 1.0, scaled: str | None = None, k_scale: float = 1.0,
+              k_cash_flow: float = 1.0, flow_of: str | None = None):
+    """The modes as the file writes them; ``k_fixed`` times every fixed flow, ``k_scale`` times
+    the scale of mode ``scaled``, ``k_cash_flow`` times the own cash_flow formula of mode
+    ``flow_of`` (valuation: simulation; every other mode's formula kept as written)."""
+    out = {}
+    for m in modes:
+        out[m.name] = {"scale": m.scale * k_scale if m.name == scaled else m.scale,
+                       "fixed": m.fixed * k_fixed}
+        if m.cash_flow is not None:
+            out[m.name]["cash_flow"] = (formula_times(m.cash_flow, k_cash_flow)
+                                        if m.name == flow_of and k_cash_flow != 1.0
+                                        else m.cash_flow)
+    return out
 
 
 def costs_raw(costs, k: float = 1.0):
@@ -166,12 +177,17 @@ class Switch(BaseRight):
         if any(m.fixed for m in self.modes):
             out.append((f"{self.name}: fixed flows of the modes", lambda k: {
                 f"{at}.modes": modes_raw(self.modes, k_fixed=k)}))
+        for m in self.modes:                 # a mode's own cash flow (valuation: simulation)
+            if m.cash_flow is not None:
+                out.append((f"{self.name}: cash flow of mode '{m.name}'", lambda k, m=m: {
+                    f"{at}.modes": modes_raw(self.modes, k_cash_flow=k, flow_of=m.name)}))
         return out
 
     def scale_inputs(self, at):
+        # a mode with its own cash_flow formula has no scale to move (the formula replaces it)
         return [(f"{self.name}: scale of mode '{m.name}'", m.scale, None,
                  lambda k, m=m: {f"{at}.modes": modes_raw(self.modes, scaled=m.name, k_scale=k)})
-                for m in self.modes if m.name != self.start and m.scale]
+                for m in self.modes if m.name != self.start and m.scale and m.cash_flow is None]
 
     # ---- results -----------------------------------------------------------------------
     def _primary(self, graph, used, modes, modals):

@@ -286,7 +286,7 @@ class ValueControl:
             for i, s in enumerate(held):
                 r = np.full(n, lay.cflow[j, s])
                 for key, mult in lay.smult.items():
-                    if mult[s]:
+                    if mult[s] and unc:         # no flow at j (weight 0): nothing to add
                         r += prob.disc[j] * prob.weight[j] * mult[s] * unc[key]
                 if j in pol.open_edges:
                     f = new[i * n:(i + 1) * n]
