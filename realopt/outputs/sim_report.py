@@ -60,7 +60,9 @@ CAPTIONS = {"cash_flow_fan": (
     "shares add up to the chance of having invested."),
     "convergence": (
     "The expanded NPV re-appraised at a sixteenth and a quarter of the file's paths (same "
-    "seed) beside the result itself (the rightmost point), each with one standard error. The "
+    "seed; the full set of rights only, without the Shapley subsets, whose control variates "
+    "the result also uses) beside the result itself (the rightmost point), each with one "
+    "standard error. The "
     "fitted exercise policy is one feasible policy, so each value is low-biased: it should "
     "settle as paths grow, and a rise beyond the error bars means more paths would still add "
     "value.")}
@@ -168,9 +170,10 @@ def convergence(a) -> list | None:
     """[(paths, expanded NPV, standard error)] at paths/16, paths/4 and the result's own paths
     (the last point is the result's, bit for bit); None when the file cannot be copied or
     fewer than two points can be appraised. Points below the loader's fewest paths are left
-    out."""
+    out. The smaller runs value the full set of rights only (simulation.quick: the same
+    set-up, streams and estimate as the appraisal, without its Shapley subsets)."""
     from ..errors import RealoptError
-    from ..simulation.result import appraise
+    from ..simulation.quick import path_values
     from .sensitivity import Copier
 
     n = a.simulation.paths
@@ -183,10 +186,10 @@ def convergence(a) -> list | None:
         if m < 2:
             continue
         try:
-            b = appraise(cp({"simulation.paths": m}), progress=False)
+            b = path_values(cp({"simulation.paths": m}))
         except RealoptError:
             continue
-        pts.append((b.simulation.paths, b.expanded_npv, b.standard_error["expanded_npv"]))
+        pts.append((b.paths, *b.estimate()["expanded_npv"]))
     pts.append((n, a.expanded_npv, a.standard_error["expanded_npv"]))
     return pts if len(pts) >= 2 else None
 

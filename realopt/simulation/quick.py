@@ -25,7 +25,8 @@ from ..model import Project
 from ..rights import build_state_graph, prepared_rights, usable_subset
 from . import lsm
 from .paths import dynamics, simulate
-from .result import (_check_project, _exact_base_value, _mean_se, _paths_used, lsm_min_paths)
+from .result import (_check_project, _exact_base_value, _mean_se, _paths_used, control_set,
+                     lsm_min_paths)
 
 
 @dataclass(frozen=True)
@@ -40,14 +41,20 @@ class PathValues:
     seed: int
     times: tuple               # the simulation dates (years), for the common-numbers check
     drivers: tuple             # names of the stochastic drivers, in the paths' order
+    static_exact: float | None = None   # the static NPV in closed form, where the base is affine
 
     def estimate(self) -> dict:
         """{expanded_npv, flexibility_value, static_npv: (mean, standard error)}, controls as
         the appraisal's (the closed-form base value makes static_npv exact when it applies)."""
         c = self.controls
-        return {"expanded_npv": _mean_se(self.expanded, self.antithetic, c),
-                "flexibility_value": _mean_se(self.expanded - self.base, self.antithetic, c),
-                "static_npv": _mean_se(self.base, self.antithetic, c)}
+        static = ((self.static_exact, 0.0) if self.static_exact is not None else
+                  _mean_se(self.base, self.antithetic, c))
+        flex = _mean_se(self.expanded - self.base, self.antithetic, c)
+        full = _mean_se(self.expanded, self.antithetic, c)
+        # as the appraisal: expanded = static + flexibility exactly; with an exact static NPV
+        # its standard error is the flexibility's
+        return {"expanded_npv": (static[0] + flex[0], flex[1] if static[1] == 0 else full[1]),
+                "flexibility_value": flex, "static_npv": static}
 
 
 def path_values(project: Project) -> PathValues:
@@ -69,21 +76,24 @@ def path_values(project: Project) -> PathValues:
     stats = [prob.basis.stats(x_fit[k]) for k in range(prob.T)]
     x_val = simulate(dyn, prob.times, n, spec.seed, "value", anti)
     mart = lsm.martingale_increments(prob, dyn, x_val)
-    out = []
-    for subset in (usable_subset(rights, {r.name for r in rights}), ()):
+    out = {}
+    for subset in ((), usable_subset(rights, {r.name for r in rights})):   # as appraise: base first
+        key = frozenset(r.name for r in subset)
+        if key in out:
+            continue
         graph = build_state_graph(subset)
         pol = lsm.fit(prob, graph, x_fit, stats, open_by)
         res = lsm.run(prob, pol, x_val, mart=mart)
         v = res.values - (investment_pv if graph.states[graph.initial].invested else 0.0)
-        out.append((v, res.correction))
-    (v_full, c_full), (v_base, c_base) = out
-    controls = [c for c in (c_full, c_base) if c is not None]
+        out[key] = (v, res.correction if res.correction is not None else np.zeros_like(v))
+    (v_base, c_base), (v_full, c_full) = out[frozenset()], out[key]
     exact = _exact_base_value(prob, dyn)
-    if exact is not None and n > 1:
-        controls.append(v_base + investment_pv - exact)
+    base_cv = None if exact is None or n <= 1 else v_base + investment_pv - exact
+    controls = control_set([c for _, c in out.values()], c_full, base_cv, n)
     return PathValues(expanded=v_full, base=v_base, controls=tuple(controls), antithetic=anti,
                       paths=n, seed=spec.seed, times=tuple(float(t) for t in prob.times),
-                      drivers=tuple(prob.names))
+                      drivers=tuple(prob.names),
+                      static_exact=None if base_cv is None else float(exact) - investment_pv)
 
 
 def common_numbers(a: PathValues, b: PathValues) -> bool:

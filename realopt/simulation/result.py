@@ -445,6 +445,17 @@ def _check_project(project: Project) -> None:
             "split the project.")
 
 
+def control_set(corrections: list, c_full, base_cv, n: int) -> list:
+    """The one fixed set of zero-mean controls of an appraisal: every fitted subset's pathwise
+    martingale correction (in the order the subsets were first valued, the base first) while
+    they are few against the paths, else the full set's alone; plus the base value less its
+    exact mean where that is known. Shared by :func:`appraise` and simulation.quick."""
+    ctrl = [c for c in corrections if c is not None]
+    if len(ctrl) + 1 > max(2, n // 200):
+        ctrl = [c_full] if c_full is not None else []
+    return ctrl + ([base_cv] if base_cv is not None else [])
+
+
 def _mean_se(v: np.ndarray, antithetic: bool, controls=()):
     """(mean, standard error) of pathwise values ``v``; antithetic pairs are averaged first.
     ``controls``: pathwise values of known mean 0 (control variates; coefficients by least
@@ -560,10 +571,7 @@ def appraise(project: Project, *, progress: bool = True,
 
     # one fixed set of controls for every estimate, so that the estimate is linear in the
     # pathwise values and Shapley shares add up to the flexibility value exactly
-    ctrl = [c for _, c in cache.values() if c is not None]
-    if len(ctrl) + 1 > max(2, n // 200):
-        ctrl = [c_full] if c_full is not None else []
-    ctrl = ctrl + ([base_cv] if base_cv is not None else [])
+    ctrl = control_set([c for _, c in cache.values()], c_full, base_cv, n)
 
     def estimate(v, c=None):
         return _mean_se(v, anti, ctrl)
