@@ -504,6 +504,17 @@ def _td(x, f: Fmt) -> str:
     return f'<td class="num" data-value="{float(x)!r}">{_e(f.money(x))}</td>'
 
 
+def _se(e, f: Fmt) -> str:
+    """A standard error as shown: "exact" for a value in closed form (0), else the money."""
+    return "exact" if e is not None and e == 0 else f.money(e)
+
+
+def _td_se(e, f: Fmt) -> str:
+    if e is None:
+        return "<td></td>"
+    return f'<td class="num" data-value="{float(e)!r}">{_e(_se(e, f))}</td>'
+
+
 def _img(png: bytes, alt: str) -> str:
     return (f'<figure><img alt="{_e(alt)}" style="max-width:100%" '
             f'src="data:image/png;base64,{base64.b64encode(png).decode()}"></figure>')
@@ -523,7 +534,7 @@ def render_html(a, f: Fmt, pngs, sens=None) -> str:
     h.append("<h2>Values</h2><table><tr><th>Item</th><th>Value</th>"
              "<th>Standard error</th></tr>")
     for item, v, e in value_rows(a):
-        h.append(f"<tr><td>{_e(item)}</td>{_td(v, f)}{_td(e, f)}</tr>")
+        h.append(f"<tr><td>{_e(item)}</td>{_td(v, f)}{_td_se(e, f)}</tr>")
     h.append("</table>")
     if a.upper_bound:
         h.append("<table><tr><td>Dual upper bound on the expanded NPV</td>"
@@ -543,7 +554,7 @@ def render_html(a, f: Fmt, pngs, sens=None) -> str:
     h.append("<table><tr><td>Real-world DCF of the base flows</td>"
              f"{_td(a.real_world_dcf['value'], f)}{_td(a.real_world_dcf['standard_error'], f)}"
              f"</tr><tr><td>Risk-neutral present value</td>{_td(a.present_value, f)}"
-             f"{_td(a.standard_error['present_value'], f)}</tr></table>")
+             f"{_td_se(a.standard_error['present_value'], f)}</tr></table>")
     h.append(f"<p>{_e(dcf_sentence(a, f))}</p><h2>Figures</h2>")
     for slug, (png, _) in pngs.items():
         h.append(f"<h3>{_e(TITLES[slug])}</h3>{_img(png, TITLES[slug])}")
@@ -572,7 +583,7 @@ def render_markdown(a, f: Fmt, pngs, sens=None) -> str:
     m += [f"**Warning:** {w}\n" for w in a.headline_warnings]
     m += [f"{a.base}. Money in {f.unit_label}, valued today.", "", "## Values", "",
           "| Item | Value | Standard error |", "|---|---:|---:|"]
-    m += [f"| {i} | {f.money(v)} | {f.money(e)} |" for i, v, e in value_rows(a)]
+    m += [f"| {i} | {f.money(v)} | {_se(e, f)} |" for i, v, e in value_rows(a)]
     if a.upper_bound:
         m += [f"| Dual upper bound on the expanded NPV | {f.money(a.upper_bound['value'])} | "
               f"{f.money(a.upper_bound['standard_error'])} |"]
@@ -614,7 +625,8 @@ def write_pdf(a, f: Fmt, pngs, path: Path, sens=None) -> list:
     lines = textwrap.wrap(CAUTION_SIMULATION, 95) + [""]
     lines += [f"Warning: {x}" for w in a.headline_warnings for x in textwrap.wrap(w, 95)]
     lines += [a.project.name, f"Money in {f.unit_label}, valued today.", ""]
-    lines += [f"{i[:58]:<60}{f.money(v):>14}  {('+- ' + f.money(e)) if e is not None else ''}"
+    lines += [f"{i[:58]:<60}{f.money(v):>14}  "
+              + ("(exact)" if e == 0 else f"+- {f.money(e)}" if e is not None else "")
               for i, v, e in value_rows(a)]
     lines += ["", "Standalone value of each right (alone on the static project):"]
     lines += [f"  {n[:56]:<58}{f.money(sv):>14}  +- {f.money(se)}"
