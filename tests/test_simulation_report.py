@@ -323,3 +323,24 @@ def test_convergence_ends_on_the_result_itself(tmp_path, monkeypatch):
     assert drawn == [pts]
     assert (tmp_path / "rep" / "figures" / "convergence.png").stat().st_size > 2000
     assert "figures/tornado.png" in (tmp_path / "rep" / "report.md").read_text()
+
+
+def test_the_dual_bound_and_its_gap_are_on_the_page(tmp_path):
+    # the interval a reader needs (Andersen & Broadie 2004): the lower estimate, the bound and
+    # their gap, stated in the Markdown and HTML report, and the bound's row in the PDF's text
+    p = load_project(ROOT / "tests" / "user_projects" / "sim_copper_mine.yaml",
+                     {"simulation.upper_bound": {"paths": 60, "inner": 6},
+                      "simulation.steps_per_year": 2, "simulation.paths": 3000})
+    a = realopt.appraise(p, progress=False)
+    ub, f = a.upper_bound, Fmt(a.project)
+    write_report(a, tmp_path / "rep", dpi=72)
+    md = (tmp_path / "rep" / "report.md").read_text(encoding="utf-8")
+    page = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
+    sentence = sim_report.bound_sentence(a, f)
+    assert f"a gap of {f.money(ub['value'] - a.expanded_npv)}" in sentence
+    assert f"| Dual upper bound on the expanded NPV | {f.money(ub['value'])} |" in md
+    assert sentence in md
+    assert "a gap of" in page and f.money(ub["value"]) in page
+    assert sim_report.bound_sentence(realopt.appraise(load_project(
+        ROOT / "tests" / "user_projects" / "sim_copper_mine.yaml",
+        {"simulation.paths": 3000, "simulation.steps_per_year": 2}), progress=False), f) == ""

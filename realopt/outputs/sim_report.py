@@ -486,6 +486,22 @@ def dcf_sentence(a, f: Fmt) -> str:
             "of the rights rest on the risk-neutral one.")
 
 
+def bound_sentence(a, f: Fmt) -> str:
+    """What the dual upper bound says, in one sentence (empty without a bound)."""
+    ub = a.upper_bound
+    if not ub:
+        return ""
+    share = ub.get("gap_share")
+    return (f"The value of the best exercise policy lies between the expanded NPV "
+            f"({f.money(a.expanded_npv)}, the fitted policy's value, low-biased) and the dual "
+            f"upper bound ({f.money(ub['value'])}), within their standard errors: a gap of "
+            f"{f.money(ub['gap'])}" + (f", {100 * share:.1f}% of the flexibility value"
+                                        if share is not None else "")
+            + ". A small gap means the fitted rules are close to the best; a large one, that "
+            f"more paths or a richer basis may add value (nested simulation, "
+            f"{ub['paths']:,} outer x {ub['inner']:,} inner paths; Andersen & Broadie 2004).")
+
+
 def sim_sentence(a) -> str:
     s = a.simulation
     return (f"Least-squares Monte Carlo: {s.paths:,} paths fit the policy and as many "
@@ -539,7 +555,7 @@ def render_html(a, f: Fmt, pngs, sens=None) -> str:
     if a.upper_bound:
         h.append("<table><tr><td>Dual upper bound on the expanded NPV</td>"
                  f"{_td(a.upper_bound['value'], f)}{_td(a.upper_bound['standard_error'], f)}"
-                 "</tr></table>")
+                 f"</tr></table><p>{_e(bound_sentence(a, f))}</p>")
     h.append(f"<p><strong>Decision today:</strong> {_e(a.decision_today)}</p>")
     h.append("<h2>Rights</h2><table><tr><th>Right</th><th>Type</th><th>Standalone</th>"
              "<th>Standard error</th><th>Shapley share</th><th>Standard error</th></tr>")
@@ -586,7 +602,7 @@ def render_markdown(a, f: Fmt, pngs, sens=None) -> str:
     m += [f"| {i} | {f.money(v)} | {_se(e, f)} |" for i, v, e in value_rows(a)]
     if a.upper_bound:
         m += [f"| Dual upper bound on the expanded NPV | {f.money(a.upper_bound['value'])} | "
-              f"{f.money(a.upper_bound['standard_error'])} |"]
+              f"{f.money(a.upper_bound['standard_error'])} |", "", bound_sentence(a, f)]
     m += ["", f"**Decision today:** {a.decision_today}", "", "## Rights", "",
           "| Right | Type | Standalone | Standard error | Shapley share | Standard error |",
           "|---|---|---:|---:|---:|---:|"]
@@ -628,6 +644,11 @@ def write_pdf(a, f: Fmt, pngs, path: Path, sens=None) -> list:
     lines += [f"{i[:58]:<60}{f.money(v):>14}  "
               + ("(exact)" if e == 0 else f"+- {f.money(e)}" if e is not None else "")
               for i, v, e in value_rows(a)]
+    if a.upper_bound:
+        lines += [f"{'Dual upper bound on the expanded NPV':<60}"
+                  f"{f.money(a.upper_bound['value']):>14}  +- "
+                  f"{f.money(a.upper_bound['standard_error'])}"]
+        lines += textwrap.wrap(bound_sentence(a, f), 95)
     lines += ["", "Standalone value of each right (alone on the static project):"]
     lines += [f"  {n[:56]:<58}{f.money(sv):>14}  +- {f.money(se)}"
               for n, _, sv, se, _, _ in right_rows(a)]
