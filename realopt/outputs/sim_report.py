@@ -154,7 +154,8 @@ def fig_tornado(s, f: Fmt):
         if base_se > 0:
             ax.axvspan(base - base_se, base + base_se, color="#d9d9d9", zorder=1, lw=0)
         ax.axvline(base, color="black", linewidth=0.9, zorder=4)
-        ax.set_title(f"{title} (base {f.money(base)})", fontsize=8, loc="left")
+        at = (f"\nat {s.paths:,} paths" if s.paths != s.result_paths else "")
+        ax.set_title(f"{title} (base {f.money(base)}{at})", fontsize=8, loc="left")
         ax.set_xlabel(f.unit_label, fontsize=7)
         ax.tick_params(labelsize=6.5)
     axes[0].set_yticks(y, labels, fontsize=6.5)
@@ -394,7 +395,10 @@ def fig_chance(a):
         ax.set_ylim(-0.02, 1.02)
         ax.set_ylabel("chance", fontsize=7)
         ax.set_title(r.name, fontsize=8)
-        ax.legend(fontsize=6, loc="best")
+        if r.mode_shares:            # six lines: the legend beside the panel, off the curves
+            ax.legend(fontsize=6, loc="upper left", bbox_to_anchor=(1.01, 1.0))
+        else:
+            ax.legend(fontsize=6, loc="best")
         ax.tick_params(labelsize=6)
     fig.axes[-1].set_xlabel("years from today", fontsize=7)
     return fig
