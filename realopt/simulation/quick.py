@@ -20,13 +20,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..errors import ValuationError
 from ..model import Project
-from ..rights import build_state_graph, prepared_rights, usable_subset
+from ..rights import build_state_graph, usable_subset
 from . import lsm
-from .paths import dynamics, simulate
-from .result import (_check_project, _exact_base_value, _mean_se, _paths_used, control_set,
-                     lsm_min_paths)
+from .paths import simulate
+from .result import _exact_base_value, _mean_se, control_set, set_up
 
 
 @dataclass(frozen=True)
@@ -59,19 +57,8 @@ class PathValues:
 
 def path_values(project: Project) -> PathValues:
     """Fit and value the full set of rights and the base project (see the module doc)."""
-    _check_project(project)
     spec = project.simulation
-    prob = lsm.Problem(project)
-    rights = prepared_rights(project)
-    open_by = {r.name: lsm.open_mask(r, prob.times, spec.steps_per_year) for r in rights}
-    anti = spec.antithetic and prob.uncertain
-    n = _paths_used(project, prob)
-    if prob.uncertain and n < lsm_min_paths(prob):
-        raise ValuationError(f"{n:,} paths are too few for {prob.basis.terms} regression "
-                             f"coefficients; use simulation.paths: {lsm_min_paths(prob):,} or "
-                             "more, or a lower simulation.basis")
-    dyn = dynamics(prob.model, "risk_neutral")
-    investment_pv = project.investment.present_value(project.market)
+    prob, rights, open_by, anti, n, dyn, investment_pv = set_up(project)
     x_fit = simulate(dyn, prob.times, n, spec.seed, "fit", anti)
     stats = [prob.basis.stats(x_fit[k]) for k in range(prob.T)]
     x_val = simulate(dyn, prob.times, n, spec.seed, "value", anti)
@@ -86,7 +73,7 @@ def path_values(project: Project) -> PathValues:
         res = lsm.run(prob, pol, x_val, mart=mart)
         v = res.values - (investment_pv if graph.states[graph.initial].invested else 0.0)
         out[key] = (v, res.correction if res.correction is not None else np.zeros_like(v))
-    (v_base, c_base), (v_full, c_full) = out[frozenset()], out[key]
+    (v_base, _), (v_full, c_full) = out[frozenset()], out[key]
     exact = _exact_base_value(prob, dyn)
     base_cv = None if exact is None or n <= 1 else v_base + investment_pv - exact
     controls = control_set([c for _, c in out.values()], c_full, base_cv, n)

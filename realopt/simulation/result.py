@@ -14,6 +14,7 @@ import math
 import sys
 import time
 from dataclasses import dataclass, field, replace
+from typing import NamedTuple
 
 import numpy as np
 
@@ -494,27 +495,45 @@ def shapley_weights(n: int) -> list[float]:
     return [math.factorial(s) * math.factorial(n - s - 1) / math.factorial(n) for s in range(n)]
 
 
+class SetUp(NamedTuple):
+    """What every valuation of a simulation project starts from (appraise, simulation.quick)."""
+
+    prob: lsm.Problem
+    rights: list
+    open_by: dict              # right name -> (T,) bool: the dates it may be used
+    antithetic: bool
+    paths: int                 # paths per set (fitting, valuing)
+    dyn: object                # risk-neutral dynamics of the drivers
+    investment_pv: float
+
+
+def set_up(project: Project) -> SetUp:
+    """Check ``project``, build its problem, rights and dates; refuse too few paths for the
+    basis (the loader's rule, for projects built in Python)."""
+    _check_project(project)
+    spec = project.simulation
+    prob = lsm.Problem(project)
+    rights = prepared_rights(project)
+    open_by = {r.name: lsm.open_mask(r, prob.times, spec.steps_per_year) for r in rights}
+    n = _paths_used(project, prob)
+    if prob.uncertain and n < lsm_min_paths(prob):
+        raise ValuationError(f"{n:,} paths are too few for {prob.basis.terms} regression "
+                             f"coefficients; use simulation.paths: {lsm_min_paths(prob):,} or "
+                             "more, or a lower simulation.basis")
+    return SetUp(prob, rights, open_by, spec.antithetic and prob.uncertain, n,
+                 dynamics(prob.model, "risk_neutral"),
+                 project.investment.present_value(project.market))
+
+
 def appraise(project: Project, *, progress: bool = True,
              today: bool = False) -> SimulationAppraisal:
     """Value every right of ``project`` by least-squares Monte Carlo; see the module doc.
     ``today``: also value the decisions open today (``today_choices``, for realopt.portfolio;
     one more forward pass, nothing else changes)."""
     t_start = time.monotonic()
-    _check_project(project)
     spec = project.simulation
-    prob = lsm.Problem(project)
-    rights = prepared_rights(project)
+    prob, rights, open_by, anti, n, dyn, investment_pv = set_up(project)
     names = [r.name for r in rights]
-    spy = spec.steps_per_year
-    open_by = {r.name: lsm.open_mask(r, prob.times, spy) for r in rights}
-    anti = spec.antithetic and prob.uncertain
-    n = _paths_used(project, prob)
-    if prob.uncertain and n < lsm_min_paths(prob):
-        raise ValuationError(f"{n:,} paths are too few for {prob.basis.terms} regression "
-                             f"coefficients; use simulation.paths: {lsm_min_paths(prob):,} or "
-                             "more, or a lower simulation.basis")
-    dyn = dynamics(prob.model, "risk_neutral")
-    investment_pv = project.investment.present_value(project.market)
     masks = 2 ** len(names)
     ub_plan = _bound_plan(project, prob, build_state_graph(rights), rights)
     prog = _Progress((masks + 2) * 2 * prob.T + (ub_plan.chunks * prob.T if ub_plan else 0),
