@@ -70,8 +70,14 @@ class Moves:
     correlation: float = 0.10
 
     def describe(self) -> str:
-        return (f"volatility +-{self.volatility * 100:g} points, rates +-{self.rates * 100:g} "
-                f"points, costs, cash flows, salvage and scale inputs +-{self.relative:.0%}")
+        return (f"volatility +-{points(self.volatility)}, rates +-{points(self.rates)}, costs, "
+                f"cash flows, salvage and scale inputs +-{self.relative:.0%}")
+
+
+def points(x: float) -> str:
+    """An absolute move of a rate in percentage points: "5 points", "1 point"."""
+    v = x * 100
+    return f"{v:g} point" + ("" if v == 1 else "s")
 
 
 DEFAULT_MOVES = Moves()

@@ -41,7 +41,7 @@ from dataclasses import dataclass, field
 
 from ..errors import RealoptError
 from ..model import Project
-from .sensitivity import DEFAULT_MOVES, Case, Copier, Moves, _investment, _pct
+from .sensitivity import DEFAULT_MOVES, Case, Copier, Moves, _investment, _pct, points
 
 TORNADO_WORK = 2.25e8       # copies x dates x paths x (states + regression terms) allowed
 PATH_DIVISORS = (1, 2, 4, 8, 16)
@@ -87,8 +87,8 @@ class SimSensitivity:
 
     def describe_moves(self) -> str:
         m = self.moves
-        return (f"volatility +-{m.volatility * 100:g} points, driver levels +-{m.level:.0%}, "
-                f"risk-free rate and risk-neutral drifts +-{m.rates * 100:g} points, "
+        return (f"volatility +-{points(m.volatility)}, driver levels +-{m.level:.0%}, "
+                f"risk-free rate and risk-neutral drifts +-{points(m.rates)}, "
                 f"correlations +-{m.correlation:g}, costs, salvage and scale inputs "
                 f"+-{m.relative:.0%}")
 
