@@ -178,3 +178,36 @@ def test_tables_fit_900_px_with_four_long_right_names(tmp_path):
     seen = json.loads(m.group(1))
     assert seen["innerWidth"] == 900
     assert seen["bad"] == [] and seen["scrollWidth"] <= 900, seen
+
+
+@pytest.fixture(scope="module")
+def sim_report(tmp_path_factory):
+    """The simulation report of the river demo (fewer paths and dates than the file, so the
+    tornado's copies are quick; every figure and table of the full report is there)."""
+    p = realopt.load_project(ROOT / "projects" / "river_ccgt.yaml",
+                             {"simulation.paths": 3000, "simulation.steps_per_year": 4,
+                              "simulation.upper_bound": {"paths": 30, "inner": 4}})
+    a = realopt.appraise(p, progress=False)
+    out = tmp_path_factory.mktemp("browser-sim") / "report"
+    write_report(a, out, dpi=100)
+    return out
+
+
+def test_simulation_report_loads_and_fits_a4_width(sim_report, tmp_path):
+    # the simulation report has its own tables (standard errors, tornado with nine columns,
+    # the dual bound): every image loads and every table stays inside an A4-wide window
+    page = (sim_report / "report.html").read_text(encoding="utf-8")
+    probe = tmp_path / "probe.html"
+    probe.write_text(page.replace("</body>", PROBE + TABLE_PROBE + "</body>"), encoding="utf-8")
+    r = _run(["--virtual-time-budget=15000", "--dump-dom", probe.as_uri()], tmp_path)
+    found = re.findall(r"PROBE(\{.*?\})PROBE", r.stdout)
+    assert len(found) == 2, f"no probe result from chromium (exit {r.returncode}): " \
+                            f"{r.stderr[-2000:]}"
+    seen = {**json.loads(found[0]), **json.loads(found[1])}
+    figures = len(list((sim_report / "figures").glob("*.png")))
+    assert seen["images"] == figures >= 6
+    assert seen["broken"] == 0
+    assert seen["innerWidth"] == A4_WIDTH_PX
+    assert seen["bad"] == [], seen
+    assert seen["scrollWidth"] <= A4_WIDTH_PX and seen["bodyWidth"] <= A4_WIDTH_PX
+    assert "exact" in page and "a gap of" in page and "Sensitivity of the expanded NPV" in page
