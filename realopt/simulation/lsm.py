@@ -145,6 +145,26 @@ def predict(rows: np.ndarray, coef: np.ndarray) -> np.ndarray:
     return out
 
 
+def predict_all(rows: np.ndarray, coefs: np.ndarray) -> np.ndarray:
+    """(m, n): row j is ``predict(rows, coefs[:, j])`` to the last bit (the same products and
+    sums per path, in the same order), for m regressions at once: one array operation per term
+    instead of one per term and regression."""
+    C = np.asarray(coefs)
+    out = C[0][:, None] * rows[0]
+    for c in range(1, min(C.shape[0], rows.shape[0])):
+        out += C[c][:, None] * rows[c]
+    return out
+
+
+def _predict_dict(rows: np.ndarray, coefs: dict) -> dict:
+    """{key: predict(rows, c)} for a dict of coefficient vectors (see :func:`predict_all`)."""
+    if not coefs:
+        return {}
+    keys = list(coefs)
+    pred = predict_all(rows, np.stack([coefs[t] for t in keys], axis=1))
+    return {t: pred[j] for j, t in enumerate(keys)}
+
+
 # --- the compiled problem -----------------------------------------------------------------------
 
 @dataclass
@@ -194,6 +214,7 @@ class Problem:
         self.uncertain = bool(cols)
         self.basis = Basis(cols, spec.basis)
         self._money: dict = {}
+        self._fixed_money: dict = {}
 
     # environment of the formulas at date k from driver values x (d, n)
     def env(self, k: int, x: np.ndarray) -> dict:
@@ -288,7 +309,11 @@ class Problem:
                 raise ValuationError(f"the money formula '{a.formula}' of '{edge.right}' gives a "
                                      f"non-finite value at year {self.times[k]:g}")
             return edge.sign * v
-        return edge.sign * float(a.at(float(self.times[k])))
+        key = (id(a), edge.sign, k)
+        hit = self._fixed_money.get(key)
+        if hit is None:                    # the amount object is kept: its id stays its own
+            hit = self._fixed_money[key] = (a, edge.sign * float(a.at(float(self.times[k]))))
+        return hit[1]
 
 
 # --- martingale control variate ----------------------------------------------------------------
@@ -427,7 +452,8 @@ class Policy:
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
-        return {s: (np.zeros(B.shape[1]) if s not in b else predict(B, b[s])) for s in states}
+        est = _predict_dict(B, {s: b[s] for s in states if s in b})
+        return {s: (est[s] if s in b else np.zeros(B.shape[1])) for s in states}
 
     def gains(self, prob: Problem, k: int, s: int, eids, x: np.ndarray) -> np.ndarray:
         """(edges, paths) gain of each edge from state s over carrying on at date k (discounted
@@ -435,8 +461,7 @@ class Policy:
         the exercise boundary (see :func:`fit`)."""
         B = prob.basis.matrix(x, self.stats[k])
         est = self.estimates(prob, k, B, _involved(self.graph, s, eids))
-        for t, c in self.post.get((k, s), {}).items():
-            est[t] = predict(B, c)
+        est.update(_predict_dict(B, self.post.get((k, s), {})))
         g = _edge_gains(prob, self.graph, k, s, eids, x, est)
         ref = self.refit.get((k, s))
         if ref is None:
@@ -446,7 +471,7 @@ class Policy:
         near = np.flatnonzero(g.max(axis=0) >= cutoff)
         if near.size:
             Bn = B[:, near]
-            est = {t: predict(Bn, c) for t, c in b2.items()}
+            est = _predict_dict(Bn, b2)
             g[:, near] = _apply_margin(_edge_gains(prob, self.graph, k, s, eids, x[:, near],
                                                    est), self.graph, s, eids, Bn, unc)
         return g
@@ -463,7 +488,9 @@ def _edge_gains(prob, graph, k, s, eids, x, est) -> np.ndarray:
     out = np.empty((len(eids), m))
     for j, e_id in enumerate(eids):
         e = graph.edges[e_id]
-        money = np.broadcast_to(prob.money(e, k, x), (m,)) * prob.disc[k]
+        money = prob.money(e, k, x)
+        money = (money * prob.disc[k] if np.ndim(money) == 0 else
+                 np.broadcast_to(money, (m,)) * prob.disc[k])
         out[j] = (est[e.target] if e.target in est else 0.0) + money - est[s]
     return out
 
@@ -480,7 +507,7 @@ def _unc(B: np.ndarray, Y: np.ndarray, coef: np.ndarray, states, G: np.ndarray) 
         Ginv = np.linalg.inv(G + 1e-10 * (np.trace(G) / k) * np.eye(k))
     except np.linalg.LinAlgError:
         Ginv = np.linalg.pinv(G)
-    R = np.array([Y[j] - predict(B, coef[:, j]) for j in range(Y.shape[0])])
+    R = np.asarray(Y) - predict_all(B, coef)
     cov = np.einsum("an,bn->ab", R, R) / max(1, n - k)
     return Ginv, cov, {t: j for j, t in enumerate(states)}
 
@@ -583,7 +610,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             P = Y
             continue
         unc[k] = _unc(B, Y[needed], coef, needed, G)
-        est = {s: predict(B, beta[k][s]) for s in needed}
+        est = dict(zip(needed, predict_all(B, coef)))
         P = Y.copy()
         srcs = _sources(graph, ids)
         # invested states decide first; a commitment is then valued with its target's own
@@ -600,7 +627,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 post[(k, s)] = {t: cp[:, j + 1] for j, t in enumerate(tg)}
                 unc_src[(k, s)] = _unc(B, rows, cp, [s] + tg, Gp)
                 est_s = dict(est)
-                est_s.update({t: predict(B, c) for t, c in post[(k, s)].items()})
+                est_s.update(dict(zip(tg, predict_all(B, cp[:, 1:]))))
             g = _edge_gains(prob, graph, k, s, eids, x[k], est_s)
             best = g.max(axis=0)
             margin_done = False
@@ -619,7 +646,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 refit[(k, s)] = (cutoff, b2, u2)
                 g[:, near] = _apply_margin(_edge_gains(
                     prob, graph, k, s, eids, x[k][:, near],
-                    {t: predict(Bn, c) for t, c in b2.items()}), graph, s, eids, Bn, u2)
+                    dict(zip(inv, predict_all(Bn, c2)))), graph, s, eids, Bn, u2)
                 margin_done = True
             if not margin_done:
                 g = _apply_margin(g, graph, s, eids, B, unc_src.get((k, s), unc[k]))
