@@ -391,6 +391,7 @@ class ConditionalFlows:
         prob, dyn, means = self.prob, self.dyn, self.means
         d, n = xk.shape[0], xk.shape[-1]
         logx = np.log(xk) if d else None
+        dev = logx - means[k][:, None] if d else None      # the same for every later date
         vbar = {key: np.zeros(n) for key in self.keys}
         for s_, e in self.flow:
             if s_ <= k:
@@ -402,7 +403,7 @@ class ConditionalFlows:
                 h = float(prob.times[e] - prob.times[k])
                 b = np.exp(-dyn.speed * h)
                 v = np.array([_variance(sg, kp, h) for sg, kp in zip(dyn.vol, dyn.speed)])
-                ex = np.exp(means[e][:, None] + (logx - means[k][:, None]) * b[:, None]
+                ex = np.exp(means[e][:, None] + dev * b[:, None]
                             + 0.5 * v[:, None])
             for key in self.keys:
                 c0, ci = self.coef[e][key]
@@ -540,6 +541,42 @@ def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
     return out
 
 
+_EYES: dict = {}
+
+
+def _eye(k: int) -> np.ndarray:
+    """The identity of size k, built once (read only)."""
+    e = _EYES.get(k)
+    if e is None:
+        e = _EYES[k] = np.eye(k)
+        e.flags.writeable = False
+    return e
+
+
+def quantile(a: np.ndarray, q: float) -> float:
+    """``float(np.quantile(a, q))`` of a 1-d float array (the default linear method, Hyndman &
+    Fan's 7th) with numpy's own arithmetic, without its general set-up: one partition of a copy
+    and the same interpolation (``a`` is not modified; NaN if ``a`` holds one)."""
+    n = a.shape[0]
+    v = (n - 1) * q
+    if v >= n - 1:                 # numpy's indices there: -1 (the last), weight v + 1
+        i = j = n - 1
+        t = v + 1
+    elif v < 0:
+        i = j = 0
+        t = v
+    else:
+        i = int(math.floor(v))
+        j = i + 1
+        t = v - i
+    part = np.partition(a, sorted({0, n - 1, i, j}))
+    if np.isnan(part[-1]):
+        return math.nan
+    lo, hi = part[i], part[j]
+    diff = hi - lo
+    return float(hi - diff * (1 - t) if t >= 0.5 else lo + diff * t)
+
+
 def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     """Coefficients (k, m) of Y (m, n) on the rows of B (k, n) by the normal equations (the
     basis is standardised, so B B' is well conditioned at the degrees allowed); a tiny ridge
@@ -549,7 +586,7 @@ def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     k = G.shape[0]
     ridge = 1e-10 * (np.trace(G) / k if k else 1.0)
     try:
-        L = np.linalg.cholesky(G + ridge * np.eye(k))
+        L = np.linalg.cholesky(G + ridge * _eye(k))
         coef = np.linalg.solve(L.T, np.linalg.solve(L, rhs))
     except np.linalg.LinAlgError:
         coef = np.linalg.lstsq(B.T, Y.T, rcond=None)[0]
@@ -635,7 +672,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             # on the paths near and beyond the exercise boundary, where the decision is made
             share = max(REFIT_SHARE, 2.0 * float((best > 0).mean()))
             if B.shape[0] > 1 and share < 1.0 and share * n >= 20 * B.shape[0]:
-                cutoff = min(0.0, float(np.quantile(best, 1.0 - share)))
+                cutoff = min(0.0, quantile(best, 1.0 - share))
                 near = np.flatnonzero(best >= cutoff)
                 inv = sorted(_involved(graph, s, eids))
                 Bn = B[:, near]
