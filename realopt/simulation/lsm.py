@@ -105,6 +105,19 @@ class Basis:
     def __post_init__(self):
         self._mono = _monomials(len(self.cols), self.degree)
         self.exps = [e for e, _ in self._mono]
+        # the terms of one degree are contiguous rows, each its parent (a row of the degree
+        # below) times one variable: one product per degree, (first row, end, parents, vars)
+        self._steps = []
+        lo = 1
+        while lo < len(self._mono):
+            deg = sum(self._mono[lo][0])
+            hi = lo
+            while hi < len(self._mono) and sum(self._mono[hi][0]) == deg:
+                hi += 1
+            par = np.array([self._mono[c][1][0] for c in range(lo, hi)], dtype=np.intp)
+            var = np.array([self._mono[c][1][1] for c in range(lo, hi)], dtype=np.intp)
+            self._steps.append((lo, hi, par, var))
+            lo = hi
 
     @property
     def terms(self) -> int:
@@ -131,8 +144,8 @@ class Basis:
         z = (v - mu[:, None]) / sd[:, None]
         out = np.empty((self.terms, n))
         out[0] = 1.0
-        for c, (_, parent) in enumerate(self._mono[1:], start=1):
-            np.multiply(out[parent[0]], z[parent[1]], out=out[c])
+        for lo, hi, par, var in self._steps:
+            np.multiply(out[par], z[var], out=out[lo:hi])
         return out
 
 
@@ -150,10 +163,17 @@ def predict_all(rows: np.ndarray, coefs: np.ndarray) -> np.ndarray:
     sums per path, in the same order), for m regressions at once: one array operation per term
     instead of one per term and regression."""
     C = np.asarray(coefs)
-    out = C[0][:, None] * rows[0]
-    for c in range(1, min(C.shape[0], rows.shape[0])):
-        out += C[c][:, None] * rows[c]
-    return out
+    kk = min(C.shape[0], rows.shape[0])
+    if rows.shape[-1] < 2:
+        # one path: numpy would sum the terms pairwise along its inner loop, not in order
+        out = C[0][:, None] * rows[0]
+        for c in range(1, kk):
+            out += C[c][:, None] * rows[c]
+        return out
+    # products (terms, m, n) summed over terms in order, as predict does: with the paths as
+    # the inner loop numpy reduces the outer axis term after term; the start -0.0 leaves the
+    # first product as it is (a sum starting from +0.0 would turn a -0.0 into +0.0)
+    return np.add.reduce(C[:kk, :, None] * rows[:kk, None, :], axis=0, initial=-0.0)
 
 
 def _predict_dict(rows: np.ndarray, coefs: dict) -> dict:
@@ -490,7 +510,7 @@ def _edge_gains(prob, graph, k, s, eids, x, est) -> np.ndarray:
     for j, e_id in enumerate(eids):
         e = graph.edges[e_id]
         money = prob.money(e, k, x)
-        money = (money * prob.disc[k] if np.ndim(money) == 0 else
+        money = (money * prob.disc[k] if getattr(money, "ndim", 0) == 0 else
                  np.broadcast_to(money, (m,)) * prob.disc[k])
         out[j] = (est[e.target] if e.target in est else 0.0) + money - est[s]
     return out
