@@ -404,34 +404,66 @@ class ConditionalFlows:
                             for key in self.keys}
         self.means = np.array([dyn.mean(t) for t in prob.times])           # (T, d)
 
+    CHUNK = 2_000_000          # numbers per stacked array in :meth:`value`
+
     def value(self, k: int, xk: np.ndarray) -> dict:
-        """{formula key: (n,) Vbar at date k} on driver values ``xk`` (d, n) at date k."""
+        """{formula key: (n,) Vbar at date k} on driver values ``xk`` (d, n) at date k.
+
+        The conditional means of all later flow dates are one exponential of a stacked array,
+        and each formula's terms (flow dates in order, then the drivers) are summed by one
+        in-order reduction over the stack: the same products and sums, in the same order, as
+        adding them one by one."""
         from .paths import _variance
 
         prob, dyn, means = self.prob, self.dyn, self.means
         d, n = xk.shape[0], xk.shape[-1]
         logx = np.log(xk) if d else None
         dev = logx - means[k][:, None] if d else None      # the same for every later date
+        fut = [(s_, e) for s_, e in self.flow if s_ > k]
         vbar = {key: np.zeros(n) for key in self.keys}
-        for s_, e in self.flow:
-            if s_ <= k:
-                continue
-            w = prob.disc[s_] * prob.weight[s_]
-            if e == k:
-                ex = xk
-            else:
-                h = float(prob.times[e] - prob.times[k])
-                b = np.exp(-dyn.speed * h)
-                v = np.array([_variance(sg, kp, h) for sg, kp in zip(dyn.vol, dyn.speed)])
-                ex = np.exp(means[e][:, None] + dev * b[:, None]
-                            + 0.5 * v[:, None])
+        if not fut:
+            return vbar
+        step = max(1, self.CHUNK // max(1, (d + 1) * n * max(1, len(self.keys))))
+        for c0_ in range(0, len(fut), step):
+            part = fut[c0_:c0_ + step]
+            far = [e for _, e in part if e != k]
+            ex = {}
+            if far:
+                h = np.array([float(prob.times[e] - prob.times[k]) for e in far])
+                b = np.exp(-dyn.speed[None, :] * h[:, None])                  # (P, d)
+                v = np.array([[_variance(sg, kp, float(hh)) for sg, kp in zip(dyn.vol, dyn.speed)]
+                              for hh in h]).reshape(len(far), d)
+                big = np.exp(means[far][:, :, None] + dev[None] * b[:, :, None]
+                             + 0.5 * v[:, :, None])                          # (P, d, n)
+                ex = {e: big[j] for j, e in enumerate(far)}
             for key in self.keys:
-                c0, ci = self.coef[e][key]
+                terms, consts = [], []
+                for s_, e in part:
+                    w = prob.disc[s_] * prob.weight[s_]
+                    c0, ci = self.coef[e][key]
+                    xe = xk if e == k else ex[e]
+                    terms.append(None)
+                    consts.append(w * c0)
+                    for i in range(d):
+                        if ci[i] != 0.0:
+                            terms.append((w * ci[i], xe[i]))
+                stack = np.empty((len(terms), n))
+                j0 = 0
+                for j, t in enumerate(terms):
+                    if t is None:
+                        stack[j] = consts[j0]
+                        j0 += 1
+                    else:
+                        np.multiply(t[0], t[1], out=stack[j])
                 acc = vbar[key]
-                acc += w * c0
-                for i in range(d):
-                    if ci[i] != 0.0:
-                        acc += (w * ci[i]) * ex[i]
+                if n >= 2:
+                    # the paths are the inner loop: numpy adds the rows onto acc in order (the
+                    # start -0.0 leaves acc as it is, signed zeros too)
+                    acc[...] = np.add.reduce(np.concatenate([acc[None], stack]), axis=0,
+                                             initial=-0.0)
+                else:
+                    for row in stack:
+                        acc += row
         return vbar
 
 
