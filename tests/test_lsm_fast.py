@@ -57,32 +57,3 @@ def test_predict_all_keeps_signed_zeros(k, m, n, seed, zeros):
     for j in range(m):
         ref = lsm.predict(rows, coefs[:, j])
         assert np.array_equal(got[j], ref) and np.array_equal(np.signbit(got[j]), np.signbit(ref))
-
-
-def _matrix_term_by_term(basis, x, st_):
-    # the former construction: one product per monomial, its parent times one variable
-    mu, sd, lo, hi = st_
-    v = np.clip(x[basis.cols], lo[:, None], hi[:, None])
-    z = (v - mu[:, None]) / sd[:, None]
-    out = np.empty((basis.terms, x.shape[-1]))
-    out[0] = 1.0
-    for c, (_, parent) in enumerate(basis._mono[1:], start=1):
-        np.multiply(out[parent[0]], z[parent[1]], out=out[c])
-    return out
-
-
-@settings(max_examples=60, deadline=None)
-@given(st.integers(1, 4), st.integers(1, 4), st.integers(2, 200), st.integers(0, 2 ** 32 - 1))
-def test_matrix_by_degree_matches_term_by_term(d, degree, n, seed):
-    rng = np.random.default_rng(seed)
-    x = np.exp(rng.standard_normal((d + 1, n)))
-    basis = lsm.Basis(list(range(1, d + 1)), degree)
-    st_ = basis.stats(x)
-    got = basis.matrix(x, st_)
-    assert got.shape[0] == basis.terms
-    assert np.array_equal(got, _matrix_term_by_term(basis, x, st_))
-    # the exponents of each row are the powers the row holds (a product of z's)
-    z = (x[1:] - st_[0][:, None]) / st_[1][:, None]
-    for r, e in enumerate(basis.exps):
-        np.testing.assert_allclose(got[r], np.prod(z ** np.array(e)[:, None], axis=0),
-                                   rtol=1e-9, atol=1e-12)
