@@ -36,6 +36,11 @@ from ..model import Project, Switch
 from ..rights import StateGraph
 
 TOL = 1e-9
+# Below 8 x SMALL numbers, predictions of several states cost mostly their calls: one stacked
+# array; above, a loop in place keeps the arrays in the cache (measured: 10 terms, 3 states,
+# 3,124 paths 41 us stacked against 54 us; 50,000 paths 708 against 566 us). Both give the same
+# floats (the same products and sums, in the same order).
+SMALL = 16_384
 
 
 # --- time grid --------------------------------------------------------------------------------
@@ -145,6 +150,34 @@ def predict(rows: np.ndarray, coef: np.ndarray) -> np.ndarray:
     return out
 
 
+def predict_all(rows: np.ndarray, coefs: np.ndarray) -> np.ndarray:
+    """(m, n): row j is ``predict(rows, coefs[:, j])`` to the last bit (the same products and
+    sums per path, in the same order), for m regressions at once: one array operation per term
+    instead of one per term and regression."""
+    C = np.asarray(coefs)
+    kk = min(C.shape[0], rows.shape[0])
+    if rows.shape[-1] < 2 or kk * C.shape[1] * rows.shape[-1] > 8 * SMALL:
+        # one path: numpy would sum the terms pairwise along its inner loop, not in order;
+        # many paths: in place, term after term
+        out = C[0][:, None] * rows[0]
+        for c in range(1, kk):
+            out += C[c][:, None] * rows[c]
+        return out
+    # products (terms, m, n) summed over terms in order, as predict does: with the paths as
+    # the inner loop numpy reduces the outer axis term after term; the start -0.0 leaves the
+    # first product as it is (a sum starting from +0.0 would turn a -0.0 into +0.0)
+    return np.add.reduce(C[:kk, :, None] * rows[:kk, None, :], axis=0, initial=-0.0)
+
+
+def _predict_dict(rows: np.ndarray, coefs: dict) -> dict:
+    """{key: predict(rows, c)} for a dict of coefficient vectors (see :func:`predict_all`)."""
+    if not coefs:
+        return {}
+    keys = list(coefs)
+    pred = predict_all(rows, np.stack([coefs[t] for t in keys], axis=1))
+    return {t: pred[j] for j, t in enumerate(keys)}
+
+
 # --- the compiled problem -----------------------------------------------------------------------
 
 @dataclass
@@ -194,6 +227,7 @@ class Problem:
         self.uncertain = bool(cols)
         self.basis = Basis(cols, spec.basis)
         self._money: dict = {}
+        self._fixed_money: dict = {}
 
     # environment of the formulas at date k from driver values x (d, n)
     def env(self, k: int, x: np.ndarray) -> dict:
@@ -288,7 +322,11 @@ class Problem:
                 raise ValuationError(f"the money formula '{a.formula}' of '{edge.right}' gives a "
                                      f"non-finite value at year {self.times[k]:g}")
             return edge.sign * v
-        return edge.sign * float(a.at(float(self.times[k])))
+        key = (id(a), edge.sign, k)
+        hit = self._fixed_money.get(key)
+        if hit is None:                    # the amount object is kept: its id stays its own
+            hit = self._fixed_money[key] = (a, edge.sign * float(a.at(float(self.times[k]))))
+        return hit[1]
 
 
 # --- martingale control variate ----------------------------------------------------------------
@@ -366,6 +404,7 @@ class ConditionalFlows:
         prob, dyn, means = self.prob, self.dyn, self.means
         d, n = xk.shape[0], xk.shape[-1]
         logx = np.log(xk) if d else None
+        dev = logx - means[k][:, None] if d else None      # the same for every later date
         vbar = {key: np.zeros(n) for key in self.keys}
         for s_, e in self.flow:
             if s_ <= k:
@@ -377,8 +416,7 @@ class ConditionalFlows:
                 h = float(prob.times[e] - prob.times[k])
                 b = np.exp(-dyn.speed * h)
                 v = np.array([_variance(sg, kp, h) for sg, kp in zip(dyn.vol, dyn.speed)])
-                ex = np.exp(means[e][:, None] + (logx - means[k][:, None]) * b[:, None]
-                            + 0.5 * v[:, None])
+                ex = np.exp(means[e][:, None] + dev * b[:, None] + 0.5 * v[:, None])
             for key in self.keys:
                 c0, ci = self.coef[e][key]
                 acc = vbar[key]
@@ -427,7 +465,8 @@ class Policy:
 
     def estimates(self, prob: Problem, k: int, B: np.ndarray, states) -> dict:
         b = self.beta[k]
-        return {s: (np.zeros(B.shape[1]) if s not in b else predict(B, b[s])) for s in states}
+        est = _predict_dict(B, {s: b[s] for s in states if s in b})
+        return {s: (est[s] if s in b else np.zeros(B.shape[1])) for s in states}
 
     def gains(self, prob: Problem, k: int, s: int, eids, x: np.ndarray) -> np.ndarray:
         """(edges, paths) gain of each edge from state s over carrying on at date k (discounted
@@ -435,8 +474,7 @@ class Policy:
         the exercise boundary (see :func:`fit`)."""
         B = prob.basis.matrix(x, self.stats[k])
         est = self.estimates(prob, k, B, _involved(self.graph, s, eids))
-        for t, c in self.post.get((k, s), {}).items():
-            est[t] = predict(B, c)
+        est.update(_predict_dict(B, self.post.get((k, s), {})))
         g = _edge_gains(prob, self.graph, k, s, eids, x, est)
         ref = self.refit.get((k, s))
         if ref is None:
@@ -446,7 +484,7 @@ class Policy:
         near = np.flatnonzero(g.max(axis=0) >= cutoff)
         if near.size:
             Bn = B[:, near]
-            est = {t: predict(Bn, c) for t, c in b2.items()}
+            est = _predict_dict(Bn, b2)
             g[:, near] = _apply_margin(_edge_gains(prob, self.graph, k, s, eids, x[:, near],
                                                    est), self.graph, s, eids, Bn, unc)
         return g
@@ -463,7 +501,9 @@ def _edge_gains(prob, graph, k, s, eids, x, est) -> np.ndarray:
     out = np.empty((len(eids), m))
     for j, e_id in enumerate(eids):
         e = graph.edges[e_id]
-        money = np.broadcast_to(prob.money(e, k, x), (m,)) * prob.disc[k]
+        money = prob.money(e, k, x)
+        money = (money * prob.disc[k] if getattr(money, "ndim", 0) == 0 else
+                 np.broadcast_to(money, (m,)) * prob.disc[k])
         out[j] = (est[e.target] if e.target in est else 0.0) + money - est[s]
     return out
 
@@ -480,7 +520,7 @@ def _unc(B: np.ndarray, Y: np.ndarray, coef: np.ndarray, states, G: np.ndarray) 
         Ginv = np.linalg.inv(G + 1e-10 * (np.trace(G) / k) * np.eye(k))
     except np.linalg.LinAlgError:
         Ginv = np.linalg.pinv(G)
-    R = np.array([Y[j] - predict(B, coef[:, j]) for j in range(Y.shape[0])])
+    R = np.asarray(Y) - predict_all(B, coef)
     cov = np.einsum("an,bn->ab", R, R) / max(1, n - k)
     return Ginv, cov, {t: j for j, t in enumerate(states)}
 
@@ -513,6 +553,42 @@ def _gain_sd(graph, s, eids, B: np.ndarray, unc) -> np.ndarray:
     return out
 
 
+_EYES: dict = {}
+
+
+def _eye(k: int) -> np.ndarray:
+    """The identity of size k, built once (read only)."""
+    e = _EYES.get(k)
+    if e is None:
+        e = _EYES[k] = np.eye(k)
+        e.flags.writeable = False
+    return e
+
+
+def quantile(a: np.ndarray, q: float) -> float:
+    """``float(np.quantile(a, q))`` of a 1-d float array (the default linear method, Hyndman &
+    Fan's 7th) with numpy's own arithmetic, without its general set-up: one partition of a copy
+    and the same interpolation (``a`` is not modified; NaN if ``a`` holds one)."""
+    n = a.shape[0]
+    v = (n - 1) * q
+    if v >= n - 1:                 # numpy's indices there: -1 (the last), weight v + 1
+        i = j = n - 1
+        t = v + 1
+    elif v < 0:
+        i = j = 0
+        t = v
+    else:
+        i = int(math.floor(v))
+        j = i + 1
+        t = v - i
+    part = np.partition(a, sorted({0, n - 1, i, j}))
+    if np.isnan(part[-1]):
+        return math.nan
+    lo, hi = part[i], part[j]
+    diff = hi - lo
+    return float(hi - diff * (1 - t) if t >= 0.5 else lo + diff * t)
+
+
 def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     """Coefficients (k, m) of Y (m, n) on the rows of B (k, n) by the normal equations (the
     basis is standardised, so B B' is well conditioned at the degrees allowed); a tiny ridge
@@ -522,7 +598,7 @@ def least_squares(B: np.ndarray, Y: np.ndarray, gram: bool = False):
     k = G.shape[0]
     ridge = 1e-10 * (np.trace(G) / k if k else 1.0)
     try:
-        L = np.linalg.cholesky(G + ridge * np.eye(k))
+        L = np.linalg.cholesky(G + ridge * _eye(k))
         coef = np.linalg.solve(L.T, np.linalg.solve(L, rhs))
     except np.linalg.LinAlgError:
         coef = np.linalg.lstsq(B.T, Y.T, rcond=None)[0]
@@ -583,7 +659,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             P = Y
             continue
         unc[k] = _unc(B, Y[needed], coef, needed, G)
-        est = {s: predict(B, beta[k][s]) for s in needed}
+        est = dict(zip(needed, predict_all(B, coef)))
         P = Y.copy()
         srcs = _sources(graph, ids)
         # invested states decide first; a commitment is then valued with its target's own
@@ -600,7 +676,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 post[(k, s)] = {t: cp[:, j + 1] for j, t in enumerate(tg)}
                 unc_src[(k, s)] = _unc(B, rows, cp, [s] + tg, Gp)
                 est_s = dict(est)
-                est_s.update({t: predict(B, c) for t, c in post[(k, s)].items()})
+                est_s.update(dict(zip(tg, predict_all(B, cp[:, 1:]))))
             g = _edge_gains(prob, graph, k, s, eids, x[k], est_s)
             best = g.max(axis=0)
             margin_done = False
@@ -608,7 +684,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
             # on the paths near and beyond the exercise boundary, where the decision is made
             share = max(REFIT_SHARE, 2.0 * float((best > 0).mean()))
             if B.shape[0] > 1 and share < 1.0 and share * n >= 20 * B.shape[0]:
-                cutoff = min(0.0, float(np.quantile(best, 1.0 - share)))
+                cutoff = min(0.0, quantile(best, 1.0 - share))
                 near = np.flatnonzero(best >= cutoff)
                 inv = sorted(_involved(graph, s, eids))
                 Bn = B[:, near]
@@ -619,7 +695,7 @@ def fit(prob: Problem, graph: StateGraph, x: np.ndarray, stats, open_by_right,
                 refit[(k, s)] = (cutoff, b2, u2)
                 g[:, near] = _apply_margin(_edge_gains(
                     prob, graph, k, s, eids, x[k][:, near],
-                    {t: predict(Bn, c) for t, c in b2.items()}), graph, s, eids, Bn, u2)
+                    dict(zip(inv, predict_all(Bn, c2)))), graph, s, eids, Bn, u2)
                 margin_done = True
             if not margin_done:
                 g = _apply_margin(g, graph, s, eids, B, unc_src.get((k, s), unc[k]))
