@@ -37,6 +37,17 @@ from realopt.outputs import sensitivity as S
 from realopt.outputs import sim_sensitivity as SS
 from realopt.project import loads
 from references import bsm
+from sim_texts import at_paths
+import sim_texts
+
+# the projects of tests/test_simulation.py (tests/sim_texts.py) at fewer paths
+EXCHANGE = at_paths(sim_texts.EXCHANGE, 600)
+GRAPH = sim_texts.GRAPH.format(
+    valuation="valuation: simulation\nsimulation: {paths: 800, seed: 4, basis: 2, "
+              "steps_per_year: 2}", vol="")
+FORMULA = at_paths(sim_texts.FORMULA, 600)
+SPREAD = at_paths(sim_texts.SPREAD, 400)
+SCHEDULES = sim_texts.SCHEDULES
 
 ROOT = Path(__file__).resolve().parents[1]
 ZERO = S.Moves(volatility=0.0, rates=0.0, relative=0.0, level=0.0, correlation=0.0)
@@ -60,97 +71,10 @@ rights:
      dates: [0.2, 0.4, 0.6, 0.8, 1]}}
 """
 
-EXCHANGE = """
-project: {name: exchange}
-valuation: simulation
-simulation: {paths: 600, seed: 5, basis: 2}
-market: {risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.05}
-underlying:
-  years: [2, 2]
-  drivers:
-    A: {process: gbm, start: 100, volatility: 0.3, risk_neutral: {drift: 0.05}}
-    B: {process: gbm, start: 95, volatility: 0.2,
-        risk_neutral: {forward: {1: 99.87075415572, 2: 104.99123721719}}}
-  correlation: [[A, B, 0.4]]
-  cash_flow: A
-investment: {cost: 0}
-rights:
-  - name: Change over
-    type: switch
-    modes: {first: {}, second: {cash_flow: B}}
-    costs: {first->second: 0}
-    window: [1, 1]
-    exercise: european
-"""
 
-GRAPH = """
-project: {name: graph}
-valuation: simulation
-simulation: {paths: 800, seed: 4, basis: 2, steps_per_year: 2}
-market: {risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.08}
-underlying:
-  years: [1, 8]
-  drivers:
-    X: {process: gbm, start: 12, drift: 0.08, volatility: 0.35, risk_neutral: {drift: 0.05}}
-  cash_flow: X
-investment: {cost: 80}
-rights:
-  - {name: Wait, type: defer, window: [0, 3], exercise: bermudan, dates: [0, 1, 2, 3]}
-  - {name: Grow, type: expand, scale: 0.4, cost: 30, window: [1, 6], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6], requires: [Wait]}
-  - {name: Idle, type: switch, modes: {run: {}, idle: {scale: 0, fixed: -1.0}},
-     costs: {run->idle: 0.5, idle->run: 1.5}, window: [1, 7], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6, 7]}
-  - {name: Sell, type: abandon, salvage: 35, window: [1, 7], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6, 7], excludes: [Grow]}
-"""
 
-FORMULA = """
-project: {name: formula salvage}
-valuation: simulation
-simulation: {paths: 600, seed: 1}
-market: {risk_free_rate: 0.06, compounding: continuous, discount_rate: 0.06}
-underlying:
-  years: [2, 2]
-  drivers:
-    S: {process: gbm, start: 36, volatility: 0.2, risk_neutral: {drift: 0.06}}
-  cash_flow: S
-investment: {cost: 0}
-rights:
-  - {name: Sell, type: abandon, salvage: 0.5 * S + 25, window: [1, 1], exercise: european}
-"""
 
-SPREAD = """
-project: {name: spread}
-valuation: simulation
-simulation: {paths: 400, steps_per_year: 4}
-market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
-underlying:
-  years: [1, 3]
-  flow_timing: spread
-  drivers:
-    X: {process: gbm, start: 10, volatility: 0.3, risk_neutral: {drift: 0.04}}
-  cash_flow: X
-investment: {cost: 0}
-rights:
-  - {name: Sell, type: abandon, salvage: 0, window: [0, 3]}
-"""
 
-SCHEDULES = """
-project: {name: schedules}
-valuation: simulation
-simulation: {paths: 5000, steps_per_year: 1}
-market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
-underlying:
-  years: [1, 12]
-  drivers:
-    price: {schedule: {0: 40, 12: 70}}
-    cost: {schedule: {0: 50, 12: 45}}
-  cash_flow: price - cost
-investment: {cost: 30}
-rights:
-  - {name: Wait, type: defer, window: [0, 6]}
-"""
 
 KILN = """
 valuation: simulation

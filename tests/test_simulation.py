@@ -17,6 +17,7 @@ import realopt
 from realopt.project import loads
 from realopt.simulation import lsm
 from realopt.simulation.paths import dynamics, simulate
+from sim_texts import EXCHANGE, FORMULA, GRAPH, SCHEDULES, SPREAD
 
 ql = pytest.importorskip("QuantLib")
 
@@ -99,28 +100,7 @@ def margrabe_quantlib(s_get, s_give, v_get, v_give, rho, r, t):
 
 
 def test_one_time_switch_is_a_margrabe_exchange_option():
-    text = """
-project: {name: exchange}
-valuation: simulation
-simulation: {paths: 40000, seed: 5, basis: 2}
-market: {risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.05}
-underlying:
-  years: [2, 2]
-  drivers:
-    A: {process: gbm, start: 100, volatility: 0.3, risk_neutral: {drift: 0.05}}
-    B: {process: gbm, start: 95, volatility: 0.2,
-        risk_neutral: {forward: {1: 99.87075415572, 2: 104.99123721719}}}
-  correlation: [[A, B, 0.4]]
-  cash_flow: A
-investment: {cost: 0}
-rights:
-  - name: Change over
-    type: switch
-    modes: {first: {}, second: {cash_flow: B}}
-    costs: {first->second: 0}
-    window: [1, 1]
-    exercise: european
-"""
+    text = EXCHANGE
     a = realopt.appraise(loads(text))
     # B's forward curve is 95 e^{0.05 t} at t = 1, 2 (so its risk-neutral drift is r too)
     # Margrabe (1978) via QuantLib's AnalyticEuropeanMargrabeEngine (PyPI package QuantLib)
@@ -194,21 +174,7 @@ def test_dual_upper_bound_brackets_the_lattice_american_put():
 # --- exact dynamic programming --------------------------------------------------------------------
 
 def test_deterministic_drivers_give_exact_dynamic_programming():
-    text = """
-project: {name: schedules}
-valuation: simulation
-simulation: {paths: 5000, steps_per_year: 1}
-market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
-underlying:
-  years: [1, 12]
-  drivers:
-    price: {schedule: {0: 40, 12: 70}}
-    cost: {schedule: {0: 50, 12: 45}}
-  cash_flow: price - cost
-investment: {cost: 30}
-rights:
-  - {name: Wait, type: defer, window: [0, 6]}
-"""
+    text = SCHEDULES
     a = realopt.appraise(loads(text))
     assert a.standard_error == {"present_value": 0.0, "expanded_npv": 0.0,
                                 "flexibility_value": 0.0}
@@ -362,26 +328,6 @@ def test_cli_check_and_appraise_json(tmp_path):
 
 # --- the whole state graph against the lattice ------------------------------------------------
 
-GRAPH = """
-project: {{name: graph}}
-{valuation}
-market: {{risk_free_rate: 0.05, compounding: continuous, discount_rate: 0.08}}
-underlying:
-  years: [1, 8]
-  drivers:
-    X: {{process: gbm, start: 12, drift: 0.08, volatility: 0.35, risk_neutral: {{drift: 0.05}}}}
-  cash_flow: X
-{vol}investment: {{cost: 80}}
-rights:
-  - {{name: Wait, type: defer, window: [0, 3], exercise: bermudan, dates: [0, 1, 2, 3]}}
-  - {{name: Grow, type: expand, scale: 0.4, cost: 30, window: [1, 6], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6], requires: [Wait]}}
-  - {{name: Idle, type: switch, modes: {{run: {{}}, idle: {{scale: 0, fixed: -1.0}}}},
-     costs: {{run->idle: 0.5, idle->run: 1.5}}, window: [1, 7], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6, 7]}}
-  - {{name: Sell, type: abandon, salvage: 35, window: [1, 7], exercise: bermudan,
-     dates: [1, 2, 3, 4, 5, 6, 7], excludes: [Grow]}}
-"""
 
 
 def test_every_right_type_with_requires_and_excludes_agrees_with_the_lattice():
@@ -409,20 +355,7 @@ def test_money_formula_over_the_drivers():
     # (Black-Scholes-Merton, tests/references.bsm)
     from references import bsm
 
-    text = """
-project: {name: formula salvage}
-valuation: simulation
-simulation: {paths: 20000, seed: 1}
-market: {risk_free_rate: 0.06, compounding: continuous, discount_rate: 0.06}
-underlying:
-  years: [2, 2]
-  drivers:
-    S: {process: gbm, start: 36, volatility: 0.2, risk_neutral: {drift: 0.06}}
-  cash_flow: S
-investment: {cost: 0}
-rights:
-  - {name: Sell, type: abandon, salvage: 0.5 * S + 25, window: [1, 1], exercise: european}
-"""
+    text = FORMULA
     a = realopt.appraise(loads(text))
     assert a.project.rights[0].salvage.formula == "0.5 * S + 25"
     ref = 0.5 * bsm("put", 36.0, 50.0, 0.06, 0.0, 0.2, 1.0)
@@ -437,21 +370,7 @@ rights:
 def test_spread_timing_present_value_is_exact():
     # spread: each step pays the cash-flow rate at its start times the step's length inside the
     # cash-flow years (docs/design.md, section 10); E*[X_t] = X0 e^{r t} (gbm), discounted at r (continuous)
-    text = """
-project: {name: spread}
-valuation: simulation
-simulation: {paths: 2000, steps_per_year: 4}
-market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
-underlying:
-  years: [1, 3]
-  flow_timing: spread
-  drivers:
-    X: {process: gbm, start: 10, volatility: 0.3, risk_neutral: {drift: 0.04}}
-  cash_flow: X
-investment: {cost: 0}
-rights:
-  - {name: Sell, type: abandon, salvage: 0, window: [0, 3]}
-"""
+    text = SPREAD
     a = realopt.appraise(loads(text))
     ts = np.arange(0, 13) / 4
     ref = sum(math.exp(-0.04 * ts[k]) * 0.25 * 10 * math.exp(0.04 * ts[k - 1])
