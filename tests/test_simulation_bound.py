@@ -22,6 +22,7 @@ from realopt.project import loads
 from realopt.rights import build_state_graph, prepared_rights
 from realopt.simulation import bound, lsm
 from realopt.simulation.paths import dynamics, simulate
+from sim_texts import SCHEDULES
 
 from test_simulation import GRAPH, put_project
 
@@ -149,22 +150,10 @@ def test_same_seed_same_bound():
 # --- exact cases ----------------------------------------------------------------------------------
 
 def test_deterministic_drivers_give_the_exact_value_with_no_error():
-    text = """
-project: {name: schedules}
-valuation: simulation
-simulation: {paths: 5000, steps_per_year: 1, upper_bound: {paths: 200, inner: 20}}
-market: {risk_free_rate: 0.04, compounding: continuous, discount_rate: 0.04}
-underlying:
-  years: [1, 12]
-  drivers:
-    price: {schedule: {0: 40, 12: 70}}
-    cost: {schedule: {0: 50, 12: 45}}
-  cash_flow: price - cost
-investment: {cost: 30}
-rights:
-  - {name: Wait, type: defer, window: [0, 6]}
-  - {name: Sell, type: abandon, salvage: 20, window: [1, 12]}
-"""
+    # the schedules project of tests/test_simulation.py with a sale right and the bound
+    text = SCHEDULES.replace("steps_per_year: 1}", "steps_per_year: 1, upper_bound: "
+                             "{paths: 200, inner: 20}}") + (
+        "  - {name: Sell, type: abandon, salvage: 20, window: [1, 12]}\n")
     a = realopt.appraise(loads(text), progress=False)
     r = 0.04
     flows = {y: (40 + 30 * y / 12) - (50 - 5 * y / 12) for y in range(1, 13)}
